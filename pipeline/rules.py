@@ -31,7 +31,7 @@ import pandas as pd
 from .config import CANONICAL_VARIABLES
 from .errors import RuleError
 
-__all__ = ["load_rules", "standard_rules", "duration", "rule_set_path"]
+__all__ = ["load_rules", "standard_rules", "duration", "rule_set_path", "merge_rules", "validate_rules"]
 
 _STANDARD = "standard"
 
@@ -44,13 +44,14 @@ def duration(value) -> pd.Timedelta:
 
 
 def _is_duration_text(value) -> bool:
+    """A string pandas reads as a time span, with a number and a unit ("30" alone is not)."""
     if not isinstance(value, str):
         return False
     try:
         pd.Timedelta(value)
     except (ValueError, TypeError):
         return False
-    return any(ch.isdigit() for ch in value)
+    return any(ch.isdigit() for ch in value) and any(ch.isalpha() for ch in value)
 
 
 def rule_set_path(name: str) -> Path | None:
@@ -151,11 +152,61 @@ def _check(schema: dict, override: dict, *, file, prefix: str, var_template: dic
             want_el, got_el = _type_name(expected[0]), _type_name(value[0])
             if any(_type_name(v) != want_el for v in value) and not (want_el == "list" and got_el == "list"):
                 raise RuleError(f"must be a list of {want_el} values", file=file, key=dotted)
-        if key == "range" and isinstance(value, list):
+        if (key == "range" or key.endswith("_range")) and isinstance(value, list):
             if len(value) != 2 or not all(_type_name(v) == "number" for v in value):
                 raise RuleError("must be [min, max]", file=file, key=dotted)
             if value[0] > value[1]:
                 raise RuleError(f"min {value[0]} is above max {value[1]}", file=file, key=dotted)
+        if want_t == "duration" and pd.Timedelta(value) < pd.Timedelta(0):
+            raise RuleError(f"must not be negative, got {value!r}", file=file, key=dotted)
+        if key in _POSITIVE_DURATIONS and want_t == "duration" and pd.Timedelta(value) <= pd.Timedelta(0):
+            raise RuleError(f"must be a positive time span, got {value!r}", file=file, key=dotted)
+        special = _SPECIAL.get(dotted.split("qc.override.")[-1])
+        if special is not None:
+            special(value, file=file, key=dotted)
+        elif (isinstance(value, list) and dotted.split(".")[0] in _QC_SECTIONS
+              and (key in ("apply_to", "variables") or key.endswith("_variables"))):
+            _check_variable_list(value, file=file, key=dotted)
+
+
+def _check_variable_list(value, *, file, key) -> None:
+    for name in value:
+        if not isinstance(name, str) or name not in CANONICAL_VARIABLES:
+            raise RuleError(f"unknown variable {name!r} (canonical variables: {', '.join(CANONICAL_VARIABLES)})",
+                            file=file, key=key)
+
+
+def _check_monthly(value, *, file, key) -> None:
+    if value and (len(value) != 12 or not all(_type_name(v) == "number" for v in value)):
+        raise RuleError(f"must be 12 monthly numbers (January first), got {len(value)} values",
+                        file=file, key=key)
+
+
+def _check_sectors(value, *, file, key) -> None:
+    for i, pair in enumerate(value):
+        if (not isinstance(pair, list) or len(pair) != 2
+                or not all(_type_name(v) == "number" for v in pair)
+                or not all(0.0 <= v <= 360.0 for v in pair)):
+            raise RuleError(f"entry {i + 1} must be [from, to] in degrees 0..360, got {pair!r}",
+                            file=file, key=key)
+
+
+#: sections of the QC stage whose variable lists must name canonical variables
+_QC_SECTIONS = frozenset({"despike", "met", "wet", "ustar", "sectors", "snow", "instrument"})
+
+#: duration keys that must be longer than zero (a block, a reference span, a flat-line span)
+_POSITIVE_DURATIONS = frozenset({"block", "step_per", "flat_line"})
+
+#: dotted keys with a check of their own beyond the standard's type
+_SPECIAL = {
+    "ustar.monthly": _check_monthly,
+    "sectors.exclude": _check_sectors,
+}
+
+
+def merge_rules(base: dict, override: dict) -> dict:
+    """A new rule dict: ``base`` with every key ``override`` sets replaced (tables merged)."""
+    return _merge(base, override)
 
 
 def _merge(base: dict, override: dict) -> dict:

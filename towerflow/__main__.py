@@ -1,0 +1,3 @@
+from towerflow.cli import main
+
+raise SystemExit(main())

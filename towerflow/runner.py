@@ -1,0 +1,372 @@
+"""The weekly site job without an orchestrator: store, process, write, report.
+
+``run_site`` is what ``towerflow run`` calls and what each site task of the network flow
+runs. Order of work, so that a failure leaves the store and earlier outputs as they were:
+
+1. load and validate the configuration and the rule set;
+2. parse every new file (a broken file stops the run before anything is written);
+3. merge the files into the store *in memory* and process the merged data;
+4. commit the store (atomic), then write the outputs (each file atomically; the
+   summary, written last, names the run, so a reader can tell a complete set);
+5. render the PDF report from the written outputs.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from pipeline import flags as flagbits
+from pipeline.config import SiteConfig, load_site_config
+from pipeline.errors import ConfigError, TowerflowError
+from pipeline.ingest import assign_stream, read_logger_file
+from pipeline.outputs import column_metadata, json_ready
+from pipeline.process import STAGES, SiteProducts
+from pipeline.rules import load_rules
+
+from . import __version__
+from .atomic import atomic_write_bytes, atomic_write_text
+from .store import SiteStore
+
+__all__ = ["run_site", "SiteOutcome", "site_output_dir", "write_parquet", "rules_to_toml"]
+
+#: columns compared for the change log
+_CHANGE_COLUMNS = ("le", "h", "rn", "g", "rg", "ta", "vpd", "rh", "ustar", "le_flag", "h_flag",
+                   "le_filled", "h_filled", "gs", "gs_closed", "omega")
+
+
+@dataclass
+class SiteOutcome:
+    site: str
+    out_dir: Path
+    summary: dict
+    timings: dict = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+    store_report: dict = field(default_factory=dict)
+
+
+def site_output_dir(out_dir: Path, site_id: str) -> Path:
+    """DIR/SITE_ID, refused if it would leave DIR (the id is validated, this is a second lock)."""
+    out_dir = Path(out_dir).resolve()
+    target = (out_dir / site_id).resolve()
+    if target.parent != out_dir:
+        raise ConfigError(f"site id {site_id!r} would write outside the output folder", key="site.id")
+    return target
+
+
+def _toml_value(value) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float, np.integer, np.floating)):
+        return repr(float(value)) if isinstance(value, (float, np.floating)) else str(int(value))
+    if isinstance(value, str):
+        return json.dumps(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    raise TypeError(f"cannot write {type(value).__name__} to TOML")
+
+
+def rules_to_toml(rules: dict, *, header: str = "") -> str:
+    """A rule set as TOML text that ``load_rules`` reads back to the same dict."""
+    lines = [f"# {line}" for line in header.splitlines()] if header else []
+
+    def emit(table: dict, prefix: str):
+        scalars = {k: v for k, v in table.items() if not isinstance(v, dict)}
+        tables = {k: v for k, v in table.items() if isinstance(v, dict)}
+        if prefix and (scalars or not tables):
+            lines.append(f"\n[{prefix}]")
+        for key, value in scalars.items():
+            lines.append(f"{key} = {_toml_value(value)}")
+        for key, value in tables.items():
+            emit(value, f"{prefix}.{key}" if prefix else key)
+
+    emit(rules, "")
+    return "\n".join(lines) + "\n"
+
+
+def write_parquet(path: Path, frame: pd.DataFrame, *, file_metadata: dict, extra: dict | None = None) -> None:
+    """Write ``frame`` atomically with per-column metadata (unit, long_name, standard_name, flags)."""
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    fields = []
+    for f in table.schema:
+        meta = column_metadata(f.name, extra)
+        fields.append(f.with_metadata({k.encode(): str(v).encode() for k, v in meta.items()}))
+    schema = pa.schema(fields, metadata={
+        **(table.schema.metadata or {}),
+        b"towerflow": json.dumps(json_ready(file_metadata)).encode(),
+    })
+    table = table.cast(schema)
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink, compression="zstd")
+    atomic_write_bytes(path, sink.getvalue().to_pybytes())
+
+
+def _periods(index: pd.DatetimeIndex, changed: np.ndarray, gap: pd.Timedelta) -> list[list[str]]:
+    """Contiguous periods (start, end) of changed intervals, merging runs closer than ``gap``."""
+    if not changed.any():
+        return []
+    times = index[changed]
+    breaks = np.flatnonzero(np.diff(times.asi8) > gap.value)
+    starts = np.r_[0, breaks + 1]
+    ends = np.r_[breaks, len(times) - 1]
+    return [[times[s].isoformat(), times[e].isoformat()] for s, e in zip(starts, ends)]
+
+
+def change_log(previous: pd.DataFrame | None, current: pd.DataFrame, *, previous_meta: dict,
+               current_meta: dict, new_rows: dict) -> dict:
+    """Which variables and periods changed since the previous run, and why."""
+    reasons = []
+    if previous is None:
+        return {"first_run": True, "changes": [], "reasons": ["first run for this output folder"]}
+    if previous_meta.get("config_sha256") != current_meta.get("config_sha256"):
+        reasons.append("the site configuration changed (e.g. a new [[history]] entry)")
+    if previous_meta.get("rules_sha256") != current_meta.get("rules_sha256"):
+        reasons.append("the effective rule set changed")
+    if any(new_rows.values()):
+        reasons.append("new data were added to the store: " +
+                       ", ".join(f"{k}: {v} rows" for k, v in new_rows.items() if v))
+    if previous_meta.get("software_version") != current_meta.get("software_version"):
+        reasons.append("the towerflow version changed")
+    prev = previous.set_index("timestamp_start")
+    cur = current.set_index("timestamp_start")
+    prev.index = pd.DatetimeIndex(prev.index)
+    cur.index = pd.DatetimeIndex(cur.index)
+    common = cur.index.intersection(prev.index)
+    changes = []
+    gap = pd.Timedelta(days=1)
+    for col in _CHANGE_COLUMNS:
+        if col not in cur.columns:
+            continue
+        if col not in prev.columns:
+            changes.append({"column": col, "periods": [], "note": "new column"})
+            continue
+        a = prev.loc[common, col].to_numpy()
+        b = cur.loc[common, col].to_numpy()
+        if a.dtype.kind == "f" or b.dtype.kind == "f":
+            a = a.astype(float)
+            b = b.astype(float)
+            diff = ~((a == b) | (np.isnan(a) & np.isnan(b)) | np.isclose(a, b, rtol=1e-9, atol=1e-9, equal_nan=True))
+        else:
+            diff = a != b
+        if diff.any():
+            changes.append({"column": col, "n_intervals": int(diff.sum()),
+                            "periods": _periods(common, diff, gap)})
+    added = cur.index.difference(prev.index)
+    return {
+        "first_run": False,
+        "previous_run": previous_meta.get("run_id"),
+        "reasons": reasons or ["nothing changed in the inputs"],
+        "new_intervals": int(len(added)),
+        "new_period": [added[0].isoformat(), added[-1].isoformat()] if len(added) else None,
+        "changes": changes,
+    }
+
+
+def _read_previous(site_dir: Path) -> tuple[pd.DataFrame | None, dict]:
+    path = site_dir / "intervals.parquet"
+    if not path.exists():
+        return None, {}
+    try:
+        table = pq.read_table(path)
+    except Exception:  # an unreadable old output is not this run's problem: say so in the log
+        return None, {"unreadable": True}
+    meta = json.loads((table.schema.metadata or {}).get(b"towerflow", b"{}"))
+    return table.to_pandas(), meta
+
+
+def _changes_markdown(site: str, log: dict) -> str:
+    lines = [f"# Changes in this run: {site}", ""]
+    lines += [f"- {r}" for r in log.get("reasons", [])]
+    if log.get("new_period"):
+        lines.append(f"- {log['new_intervals']} new intervals, {log['new_period'][0]} to {log['new_period'][1]}")
+    if log.get("changes"):
+        lines += ["", "| column | intervals changed | periods |", "|---|---|---|"]
+        for ch in log["changes"]:
+            periods = "; ".join(f"{a} to {b}" for a, b in ch.get("periods", [])[:6])
+            if len(ch.get("periods", [])) > 6:
+                periods += f"; … ({len(ch['periods'])} periods)"
+            lines.append(f"| {ch['column']} | {ch.get('n_intervals', '')} | {periods or ch.get('note', '')} |")
+    elif not log.get("first_run"):
+        lines += ["", "No earlier value changed."]
+    return "\n".join(lines) + "\n"
+
+
+@dataclass
+class PreparedSite:
+    """A site after its files are parsed and merged (in a staged store) and the working frame built."""
+
+    cfg: SiteConfig
+    rules: dict
+    site_dir: Path
+    store: SiteStore
+    pending: object  # the store's staged change, committed by finish_site
+    state: object  # pipeline.process.SiteState after the ingest stage
+    ingest_warnings: list[str] = field(default_factory=list)
+
+
+def prepare_site(config_path, files, out_dir, *, supersede: bool = False,
+                 rules_spec: str | None = None, timings: dict | None = None) -> PreparedSite:
+    """Configuration, rules, parsing and the staged store merge; nothing is written to the store."""
+    from pipeline.process import stage_ingest
+
+    timings = {} if timings is None else timings
+    cfg: SiteConfig = load_site_config(config_path)
+    rules = load_rules(rules_spec or cfg.qc.get("rules", "standard"),
+                       site_overrides=cfg.qc.get("override"), site_file=cfg.path,
+                       relative_to=cfg.path.parent)
+    site_dir = site_output_dir(Path(out_dir), cfg.site.id)
+    site_dir.mkdir(parents=True, exist_ok=True)
+    store = SiteStore(site_dir / "store")
+    t0 = time.perf_counter()
+    ingested = []
+    warnings: list[str] = []
+    for f in files:
+        path = Path(f)
+        stream = assign_stream(path, cfg)
+        item = read_logger_file(path, stream, cfg.site)
+        ingested.append(item)
+        warnings.extend(item.warnings)
+    timings["read_files"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    pending = store.prepare(ingested, supersede=supersede)
+    warnings.extend(getattr(pending, "warnings", []))
+    timings["store_merge"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    state = stage_ingest(pending.frames, cfg, rules)
+    timings["ingest"] = time.perf_counter() - t0
+    state.warnings[:0] = warnings
+    return PreparedSite(cfg=cfg, rules=rules, site_dir=site_dir, store=store, pending=pending,
+                        state=state, ingest_warnings=warnings)
+
+
+def finish_site(state, pending, *, timings: dict | None = None) -> Path:
+    """Commit the staged store change, then write the outputs (each file atomically)."""
+    from pipeline.process import stage_outputs
+
+    from .store import load_pending
+
+    timings = {} if timings is None else timings
+    if isinstance(pending, (str, os.PathLike)):
+        pending = load_pending(Path(pending))
+    site_dir = site_output_dir(Path(pending.store_root).parent.parent, state.site.id)
+    t0 = time.perf_counter()
+    products = stage_outputs(state, software_version=__version__)
+    timings["outputs"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    pending.commit()
+    timings["store_commit"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    _write_outputs(site_dir, state.cfg, products, state.rules, products.warnings, pending.report)
+    timings["write"] = time.perf_counter() - t0
+    return site_dir
+
+
+def run_site(config_path: str | os.PathLike, files, out_dir: str | os.PathLike, *,
+             supersede: bool = False, rules_spec: str | None = None, report: bool = True,
+             on_stage=None) -> SiteOutcome:
+    """The weekly job for one site: add ``files`` to the store, process, write outputs.
+
+    Parameters
+    ----------
+    config_path : path
+        The site TOML.
+    files : iterable of paths
+        New logger exports (may be empty: reprocess the store).
+    out_dir : path
+        DIR; the site's outputs and store live under DIR/SITE_ID/.
+    supersede : bool
+        New values replace conflicting stored ones (the old ones are kept in the store's log).
+    rules_spec : str, optional
+        Rule set to use instead of the site's own ``[qc] rules`` (the network's standard);
+        the site's ``[qc.override]`` still applies on top.
+    report : bool
+        Render ``qc_report.pdf``.
+    on_stage : callable, optional
+        Called with each stage name as it starts (progress display).
+    """
+    from pipeline.process import run_stage
+
+    timings: dict[str, float] = {}
+    t_start = time.perf_counter()
+    if on_stage:
+        on_stage("ingest")
+    prepared = prepare_site(config_path, files, out_dir, supersede=supersede, rules_spec=rules_spec,
+                            timings=timings)
+    state = prepared.state
+    for name in ("qc", "closure", "filling", "conductance"):
+        if on_stage:
+            on_stage(name)
+        t0 = time.perf_counter()
+        state = run_stage(name, state)
+        timings[name] = time.perf_counter() - t0
+    if on_stage:
+        on_stage("outputs")
+    site_dir = finish_site(state, prepared.pending, timings=timings)
+    if report:
+        if on_stage:
+            on_stage("report")
+        t0 = time.perf_counter()
+        from reports.site import write_site_report
+
+        write_site_report(site_dir)
+        timings["report"] = time.perf_counter() - t0
+    timings["total"] = time.perf_counter() - t_start
+    summary = json.loads((site_dir / "summary.json").read_text())
+    return SiteOutcome(site=prepared.cfg.site.id, out_dir=site_dir, summary=summary, timings=timings,
+                       warnings=summary.get("warnings", []), store_report=prepared.pending.report)
+
+
+def _write_outputs(site_dir: Path, cfg: SiteConfig, products: SiteProducts, rules: dict,
+                   warnings: list[str], store_report: dict) -> None:
+    rules_toml = rules_to_toml(rules, header=(
+        f"Effective rule set of the last run for site {cfg.site.id}.\n"
+        "Pass this file as the site's [qc] rules to repeat the run exactly."))
+    rules_sha = hashlib.sha256(rules_toml.encode()).hexdigest()
+    processed_at = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    run_id = f"{processed_at}-{os.getpid()}"
+    file_meta = {
+        "site": cfg.site.id,
+        "site_name": cfg.site.name,
+        "software_version": __version__,
+        "config_sha256": cfg.sha256,
+        "rules_sha256": rules_sha,
+        "effective_rules": rules,
+        "processed_at": processed_at,
+        "run_id": run_id,
+        "flag_bits": {str(b): f"{n}: {m}" for b, (n, m) in flagbits.BITS.items()},
+        "interval_minutes": cfg.site.interval_minutes,
+        "utc_offset_hours": cfg.site.utc_offset_hours,
+        "cautions": "Filled values are estimates. Any use for water accounting or irrigation "
+                    "follows local rules and licensed practice.",
+    }
+    previous, previous_meta = _read_previous(site_dir)
+    new_rows = store_report.get("new_rows", {}) if isinstance(store_report, dict) else {}
+    log = change_log(previous, products.intervals, previous_meta=previous_meta,
+                     current_meta=file_meta, new_rows=new_rows)
+
+    write_parquet(site_dir / "intervals.parquet", products.intervals, file_metadata=file_meta)
+    write_parquet(site_dir / "daily.parquet", products.daily,
+                  file_metadata={k: v for k, v in file_meta.items() if k != "effective_rules"})
+    atomic_write_text(site_dir / "effective_rules.toml", rules_toml)
+    atomic_write_text(site_dir / "changes.json", json.dumps(json_ready(log), indent=1))
+    atomic_write_text(site_dir / "changes.md", _changes_markdown(cfg.site.id, log))
+    summary = dict(products.summary)
+    summary["warnings"] = list(dict.fromkeys(warnings))
+    summary["run_id"] = run_id
+    summary["processed_at"] = processed_at
+    summary["rules_sha256"] = rules_sha
+    summary["store"] = store_report
+    atomic_write_text(site_dir / "summary.json", json.dumps(json_ready(summary), indent=1))
+
+
+def stage_names(report: bool = True) -> tuple[str, ...]:
+    return STAGES + (("report",) if report else ())

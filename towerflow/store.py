@@ -1,0 +1,874 @@
+"""The site store (CONTRACT §3): every ingested raw value, deduplicated, with provenance.
+
+Layout of ``DIR/SITE_ID/store/``::
+
+    manifest.json                         the single commit point (see below)
+    stream-<name>.<sha256[:16]>.parquet   one per stream: the raw values of every file
+                                          ingested into the stream, one row per interval
+    conflicts.<sha256[:16]>.parquet       the conflicts log (absent until the first conflict)
+    store.lock                            present while a run holds the store
+
+Stream files hold the values exactly as :class:`pipeline.ingest.IngestedFile` gives them
+(before scaling and unit conversion; a wrong unit or scale found later is fixed by
+reprocessing), index ``timestamp_start`` (UTC), the source columns, and per-row provenance
+columns: ``__source_file`` / ``__source_sha256`` / ``__ingested_at`` name the file that
+first wrote the row; ``__changed_by_file`` / ``__changed_by_sha256`` name the last file
+that later filled a missing value in the row or superseded one (empty otherwise). Every
+value that a file tried to change (kept or superseded) is in the conflicts log with both
+values and both sources, so each stored value can be traced to its file.
+
+``manifest.json`` lists every file ingested (sha256, name, stream, rows, interval, what it
+added) and, per stream, the name and sha256 of its current data file. Data files are never
+modified: a change writes new content-named files, then replaces the manifest with
+:func:`os.replace`. The manifest is therefore the one atomic switch between the old and the
+new store; a run that fails or is killed at any point leaves the old manifest pointing at
+the old, intact files (new files written before the failure are deleted on an exception,
+and left-overs of a killed run are removed by the next locked run). Every file is checked
+against the sha256 in the manifest when read: a corrupted file raises
+:class:`~pipeline.errors.StoreError` naming it, never silently used.
+
+Merging rules (:meth:`SiteStore.add`): new intervals are added; values equal to the stored
+ones (within a relative 1e-7, i.e. the same number written with a different number of
+digits) merge silently; a missing stored value is filled by the new file; a value that
+differs keeps the stored value and is logged (``supersede=True``: the new value wins and the
+old one is logged). A file whose overlap with the store conflicts wholesale (at least
+:attr:`SiteStore.clock_reset_fraction` of the overlapping non-missing values differ, over at
+least :attr:`SiteStore.clock_reset_min_overlap` of overlapping intervals) is refused — even
+with ``supersede`` — because it looks like a logger whose clock was reset and restamped old
+data. The same file (same sha256) again changes nothing. A file whose interval differs from
+the stream's stored interval is refused.
+
+Runs and concurrency: :meth:`SiteStore.prepare` merges files in memory and returns a
+:class:`PendingChange` (the merged frames to process, the reports); its ``commit()`` takes
+the store's lock file (``store.lock``: pid, host, time; a live holder makes a second run fail
+with "store is locked by pid N since T"; a lock left by a dead process on this host is taken
+over with a warning) and writes only if the manifest is still the one the change was
+prepared from — otherwise another run committed first and the change is refused, nothing
+written. :meth:`SiteStore.add` / :meth:`SiteStore.add_many` prepare and commit under one
+lock. A pending change can be saved to a folder and loaded in another process
+(:meth:`PendingChange.save`, :func:`load_pending`).
+"""
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import re
+import socket
+import uuid
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from pipeline.errors import StoreError, warn
+
+from .atomic import atomic_write_bytes, atomic_write_text, parquet_bytes, remove_stale_temporaries
+
+__all__ = ["SiteStore", "AddReport", "PendingChange", "load_pending", "MANIFEST_NAME", "LOCK_NAME"]
+
+MANIFEST_NAME = "manifest.json"
+LOCK_NAME = "store.lock"
+FORMAT_VERSION = 1
+INDEX_NAME = "timestamp_start"
+
+#: provenance name (as returned by :meth:`SiteStore.provenance`) -> column in the stream file
+PROVENANCE_COLUMNS: dict[str, str] = {
+    "source_file": "__source_file",
+    "source_sha256": "__source_sha256",
+    "ingested_at": "__ingested_at",
+    "changed_by_file": "__changed_by_file",
+    "changed_by_sha256": "__changed_by_sha256",
+}
+_PROV = tuple(PROVENANCE_COLUMNS.values())
+_STREAM_RE = re.compile(r"[A-Za-z0-9_-]+")
+_DATA_FILE_RE = re.compile(r"stream-([A-Za-z0-9_-]+)\.([0-9a-f]{16})\.parquet")
+_LOG_FILE_RE = re.compile(r"conflicts\.([0-9a-f]{16})\.parquet")
+_RTOL = 1e-7  # relative tolerance of "the same value" (digits written differently)
+
+_LOG_COLUMNS = [
+    "logged_at", "stream", "timestamp_start", "column", "outcome",
+    "stored_value", "new_value", "stored_text", "new_text",
+    "stored_file", "stored_sha256", "new_file", "new_sha256",
+]
+
+
+@dataclass
+class AddReport:
+    """What adding one file did to the store.
+
+    Attributes
+    ----------
+    file, sha256, stream : str
+        The file's name, its sha256 and its stream.
+    rows : int
+        Rows in the file.
+    already_ingested : bool
+        The same bytes were ingested before: nothing changed.
+    new_rows : int
+        Intervals the store did not hold.
+    identical_rows : int
+        Overlapping intervals whose every value the store already held (merged silently).
+    changed_rows : int
+        Overlapping intervals where the file filled a missing value or superseded one.
+    filled_values : int
+        Missing stored values the file supplied.
+    conflicts : int
+        Values that differ from the stored ones (logged).
+    superseded : int
+        Of those, values replaced by the file's (``supersede=True``).
+    new_columns : list of str
+        Source columns the stream did not hold yet.
+    """
+
+    file: str
+    sha256: str
+    stream: str
+    rows: int
+    already_ingested: bool = False
+    new_rows: int = 0
+    identical_rows: int = 0
+    changed_rows: int = 0
+    filled_values: int = 0
+    conflicts: int = 0
+    superseded: int = 0
+    new_columns: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+
+def _now() -> pd.Timestamp:
+    return pd.Timestamp.now(tz="UTC").floor("s")
+
+
+def _pid_alive(pid: int) -> bool:
+    if pid <= 0:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    except OSError:
+        return False
+    return True
+
+
+def _equal(stored: np.ndarray, new: np.ndarray) -> np.ndarray:
+    """Elementwise "same value" of two columns (numbers within _RTOL, otherwise as text)."""
+    if stored.dtype.kind in "fiu" and new.dtype.kind in "fiu":
+        a = stored.astype(np.float64)
+        b = new.astype(np.float64)
+        with np.errstate(invalid="ignore"):
+            return (a == b) | np.isclose(a, b, rtol=_RTOL, atol=0.0)
+    return np.array([str(x) == str(y) for x, y in zip(stored, new)], dtype=bool)
+
+
+def _clean_objects(frame: pd.DataFrame) -> pd.DataFrame:
+    """Object columns as str or None (parquet needs one type per column)."""
+    out = frame
+    for col in frame.columns:
+        if frame[col].dtype == object and col not in _PROV:
+            values = frame[col].to_numpy()
+            cleaned = np.array([None if (v is None or (isinstance(v, float) and np.isnan(v))) else
+                                (v if isinstance(v, str) else str(v)) for v in values], dtype=object)
+            if out is frame:
+                out = frame.copy()
+            out[col] = cleaned
+    return out
+
+
+class SiteStore:
+    """The store of one site under ``root`` (``DIR/SITE_ID/store``).
+
+    Parameters
+    ----------
+    root : str or os.PathLike
+        The store folder; created on the first write.
+    clock_reset_fraction : float
+        Fraction of differing overlapping values from which a file is refused as a clock
+        reset (default 0.5: common practice for "wholesale", our choice).
+    clock_reset_min_overlap : str or pandas.Timedelta
+        Overlap (intervals with compared values × interval) below which a file is never
+        refused as a clock reset, only logged (default "1 day": our choice).
+    """
+
+    def __init__(self, root, *, clock_reset_fraction: float = 0.5,
+                 clock_reset_min_overlap="1 day"):
+        self.root = Path(root)
+        self.clock_reset_fraction = float(clock_reset_fraction)
+        self.clock_reset_min_overlap = pd.Timedelta(clock_reset_min_overlap)
+        self._lock_depth = 0
+        self._lock_token: str | None = None
+
+    # ------------------------------------------------------------------ paths and manifest
+    @property
+    def manifest_path(self) -> Path:
+        return self.root / MANIFEST_NAME
+
+    @property
+    def lock_path(self) -> Path:
+        return self.root / LOCK_NAME
+
+    def _empty_manifest(self) -> dict:
+        return {"format": FORMAT_VERSION, "streams": {}, "files": [], "conflicts": None, "updated_at": None}
+
+    def _load_manifest(self) -> dict:
+        return self._load_manifest_raw()[1]
+
+    def _load_manifest_raw(self) -> tuple[bytes | None, dict]:
+        path = self.manifest_path
+        try:
+            data = path.read_bytes()
+        except FileNotFoundError:
+            return None, self._empty_manifest()
+        except OSError as exc:
+            raise StoreError(f"cannot read the store manifest ({exc.strerror})", file=path) from None
+        try:
+            manifest = json.loads(data.decode("utf-8"))
+        except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+            raise StoreError(f"store manifest is corrupted ({exc})", file=path) from None
+        ok = (isinstance(manifest, dict) and manifest.get("format") == FORMAT_VERSION
+              and isinstance(manifest.get("streams"), dict) and isinstance(manifest.get("files"), list))
+        if not ok:
+            raise StoreError("store manifest is corrupted or of an unknown format", file=path)
+        for stream, entry in manifest["streams"].items():
+            if (not isinstance(entry, dict) or not _DATA_FILE_RE.fullmatch(str(entry.get("data", "")))
+                    or not isinstance(entry.get("sha256"), str)):
+                raise StoreError(f"store manifest entry for stream {stream!r} is corrupted", file=path)
+        log = manifest.get("conflicts")
+        if log is not None and (not isinstance(log, dict) or not _LOG_FILE_RE.fullmatch(str(log.get("data", "")))):
+            raise StoreError("store manifest entry for the conflicts log is corrupted", file=path)
+        return data, manifest
+
+    def _read_verified(self, name: str, sha256: str) -> pd.DataFrame:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+        import hashlib
+
+        path = self.root / name
+        try:
+            data = path.read_bytes()
+        except FileNotFoundError:
+            raise
+        except OSError as exc:
+            raise StoreError(f"cannot read the store file ({exc.strerror})", file=path) from None
+        if hashlib.sha256(data).hexdigest() != sha256:
+            raise StoreError("store file is corrupted: its sha256 does not match the manifest; "
+                             "restore it from a backup or rebuild the store from the logger files", file=path)
+        try:
+            return pq.read_table(pa.BufferReader(data)).to_pandas()
+        except Exception as exc:  # noqa: BLE001 - any parquet failure is a corrupted file
+            raise StoreError(f"store file is not readable parquet ({type(exc).__name__})", file=path) from None
+
+    def _load_stream(self, manifest: dict, stream: str) -> pd.DataFrame:
+        entry = manifest["streams"][stream]
+        frame = self._read_verified(entry["data"], entry["sha256"])
+        frame.index = pd.DatetimeIndex(frame.index, name=INDEX_NAME)
+        return frame
+
+    def _retrying(self, fn):
+        """Run ``fn(manifest)``; once more with a fresh manifest if a file vanished under it."""
+        for attempt in range(3):
+            manifest = self._load_manifest()
+            try:
+                return fn(manifest)
+            except FileNotFoundError as exc:
+                if attempt == 2:
+                    raise StoreError("store file listed in the manifest is missing",
+                                     file=exc.filename or self.root) from None
+        raise AssertionError("unreachable")  # pragma: no cover
+
+    # ------------------------------------------------------------------ reading
+    def streams(self) -> dict[str, pd.Timedelta]:
+        """The streams held and their intervals."""
+        manifest = self._load_manifest()
+        return {s: pd.Timedelta(seconds=e["interval_seconds"]) for s, e in manifest["streams"].items()}
+
+    def files(self) -> pd.DataFrame:
+        """The files ingested, in order, as recorded in the manifest."""
+        return pd.DataFrame(self._load_manifest()["files"])
+
+    def read(self) -> dict[str, pd.DataFrame]:
+        """Raw frames per stream: source columns only, index ``timestamp_start`` (UTC)."""
+        def go(manifest):
+            out = {}
+            for stream in manifest["streams"]:
+                frame = self._load_stream(manifest, stream)
+                out[stream] = frame.drop(columns=[c for c in _PROV if c in frame.columns])
+            return out
+        return self._retrying(go)
+
+    def provenance(self, stream: str) -> pd.DataFrame:
+        """Per-row provenance of ``stream``: ``source_file``, ``source_sha256``,
+        ``ingested_at``, ``changed_by_file``, ``changed_by_sha256`` (see the module notes)."""
+        def go(manifest):
+            if stream not in manifest["streams"]:
+                raise StoreError(f"the store holds no stream {stream!r}", file=self.manifest_path)
+            frame = self._load_stream(manifest, stream)
+            prov = frame[list(_PROV)]
+            return prov.rename(columns={v: k for k, v in PROVENANCE_COLUMNS.items()})
+        return self._retrying(go)
+
+    def conflicts(self) -> pd.DataFrame:
+        """The conflicts log: every value a file tried to change, kept or superseded.
+
+        Columns: ``logged_at``, ``stream``, ``timestamp_start``, ``column``, ``outcome``
+        (``"kept_stored"`` or ``"superseded"``), ``stored_value`` / ``new_value`` (numbers),
+        ``stored_text`` / ``new_text`` (non-numeric columns), ``stored_file``,
+        ``stored_sha256``, ``new_file``, ``new_sha256``.
+        """
+        def go(manifest):
+            log = manifest.get("conflicts")
+            if not log:
+                return pd.DataFrame(columns=_LOG_COLUMNS)
+            return self._read_verified(log["data"], log["sha256"]).reset_index(drop=True)
+        return self._retrying(go)
+
+    def verify(self) -> None:
+        """Check every file listed in the manifest against its sha256 (StoreError if not)."""
+        def go(manifest):
+            for stream in manifest["streams"]:
+                self._load_stream(manifest, stream)
+            log = manifest.get("conflicts")
+            if log:
+                self._read_verified(log["data"], log["sha256"])
+        self._retrying(go)
+
+    # ------------------------------------------------------------------ lock
+    @contextlib.contextmanager
+    def lock(self):
+        """Hold the store's lock file (re-entrant within this object).
+
+        Raises
+        ------
+        StoreError
+            "store is locked by pid N since T" while another live process holds it. A lock
+            left by a dead process on this host is taken over with a warning.
+        """
+        if self._lock_depth:
+            self._lock_depth += 1
+            try:
+                yield self
+            finally:
+                self._lock_depth -= 1
+            return
+        self.root.mkdir(parents=True, exist_ok=True)
+        token = self._acquire()
+        self._lock_token, self._lock_depth = token, 1
+        try:
+            remove_stale_temporaries(self.root)
+            yield self
+        finally:
+            self._lock_depth, self._lock_token = 0, None
+            self._release(token)
+
+    def _read_lock(self) -> dict | None:
+        try:
+            info = json.loads(self.lock_path.read_text(encoding="utf-8"))
+            return info if isinstance(info, dict) else {}
+        except FileNotFoundError:
+            return None
+        except (OSError, ValueError):
+            return {}
+
+    def _acquire(self) -> str:
+        token = uuid.uuid4().hex
+        host = socket.gethostname()
+        for _ in range(5):
+            try:
+                fd = os.open(self.lock_path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                info = self._read_lock()
+                if info is None:  # released meanwhile
+                    continue
+                pid = info.get("pid")
+                since = info.get("since", "an unknown time")
+                same_host = info.get("host") == host
+                if not isinstance(pid, int) or not same_host or _pid_alive(pid):
+                    if not isinstance(pid, int):
+                        try:
+                            age = _now().timestamp() - self.lock_path.stat().st_mtime
+                        except FileNotFoundError:
+                            continue
+                        if age > 60:  # an empty or broken lock file older than a minute
+                            self._take_over(info, "an unreadable lock file")
+                            continue
+                    where = "" if same_host or not info.get("host") else f" on host {info.get('host')}"
+                    who = f"pid {pid}{where} since {since}" if isinstance(pid, int) else "another process"
+                    raise StoreError(f"store is locked by {who}: another run is using this site's store; "
+                                     "wait for it to finish", file=self.lock_path)
+                self._take_over(info, f"a stale lock of pid {pid} (no longer running) from {since}")
+                continue
+            with os.fdopen(fd, "w", encoding="utf-8") as fh:
+                json.dump({"pid": os.getpid(), "host": host, "since": _now().isoformat(),
+                           "token": token}, fh)
+                fh.flush()
+                os.fsync(fh.fileno())
+            return token
+        raise StoreError("cannot take the store lock (it keeps changing hands)", file=self.lock_path)
+
+    def _take_over(self, info: dict, what: str) -> None:
+        aside = self.root / f".{LOCK_NAME}.stale-{uuid.uuid4().hex}"
+        try:
+            os.rename(self.lock_path, aside)
+        except FileNotFoundError:
+            return
+        try:
+            moved = json.loads(aside.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            moved = {}
+        if moved != info:  # another process took over and locked in between: give it back
+            with contextlib.suppress(FileExistsError):
+                os.link(aside, self.lock_path)
+            aside.unlink()
+            return
+        aside.unlink()
+        warn(f"{self.lock_path}: took over {what}")
+
+    def _release(self, token: str) -> None:
+        info = self._read_lock()
+        if info and info.get("token") == token:
+            with contextlib.suppress(FileNotFoundError):
+                self.lock_path.unlink()
+
+    # ------------------------------------------------------------------ adding
+    def add(self, ingested, *, supersede: bool = False) -> AddReport:
+        """Add one :class:`pipeline.ingest.IngestedFile`; see the module notes for the rules.
+
+        Raises
+        ------
+        StoreError
+            Clock-reset file, interval mix, malformed frame, corrupted store, lock held.
+            Nothing is written then.
+        """
+        return self.add_many([ingested], supersede=supersede)[0]
+
+    def add_many(self, ingested_files, *, supersede: bool = False) -> list[AddReport]:
+        """Add several files in order and write once at the end.
+
+        If any file is refused, nothing is written: the store stays byte-for-byte as it was.
+        """
+        with self.lock():
+            pending = self.prepare(ingested_files, supersede=supersede)
+            pending.commit()
+            return pending.reports
+
+    def prepare(self, ingested_files, *, supersede: bool = False) -> "PendingChange":
+        """Merge files into the store in memory; nothing is written until ``commit()``.
+
+        Returns
+        -------
+        PendingChange
+            ``frames`` (the raw frames per stream as :meth:`read` will return them after the
+            commit), ``reports``, ``report`` (JSON-ready totals), ``warnings``; ``commit()``
+            writes the change atomically, refusing if another run changed the store since.
+
+        Raises
+        ------
+        StoreError
+            As :meth:`add`; nothing is written.
+        """
+        ingested_files = list(ingested_files)
+        for attempt in range(3):
+            manifest_bytes, manifest = self._load_manifest_raw()
+            try:
+                frames = {stream: self._load_stream(manifest, stream) for stream in manifest["streams"]}
+                break
+            except FileNotFoundError as exc:  # another run committed and cleaned up meanwhile
+                if attempt == 2:
+                    raise StoreError("store file listed in the manifest is missing",
+                                     file=exc.filename) from None
+        new_manifest = json.loads(json.dumps(manifest))
+        known = {f["sha256"] for f in manifest["files"]}
+        dirty: set[str] = set()
+        log_parts: list[pd.DataFrame] = []
+        reports = []
+        now = _now()
+        for ing in ingested_files:
+            name = Path(ing.path).name
+            stream = str(ing.stream)
+            report = AddReport(file=name, sha256=str(ing.sha256), stream=stream, rows=len(ing.raw))
+            if report.sha256 in known:
+                report.already_ingested = True
+                reports.append(report)
+                continue
+            raw = self._check_ingested(ing)
+            interval = pd.Timedelta(ing.interval)
+            entry = new_manifest["streams"].get(stream)
+            if entry is not None and pd.Timedelta(seconds=entry["interval_seconds"]) != interval:
+                stored = pd.Timedelta(seconds=entry["interval_seconds"])
+                raise StoreError(
+                    f"stream {stream!r} holds {_minutes(stored)} data but this file is {_minutes(interval)}: "
+                    "refusing to mix intervals in one stream", file=ing.path)
+            merged, log = self._merge(frames.get(stream), raw, ing, name, stream, interval,
+                                      supersede, now, report)
+            frames[stream] = merged
+            dirty.add(stream)
+            if log is not None and len(log):
+                log_parts.append(log)
+            if entry is None:
+                new_manifest["streams"][stream] = {"interval_seconds": int(interval.total_seconds())}
+            known.add(report.sha256)
+            record = {k: v for k, v in asdict(report).items() if k not in ("warnings", "already_ingested")}
+            record.update({"path": str(ing.path), "interval_seconds": int(interval.total_seconds()),
+                           "ingested_at": now.isoformat(),
+                           "first": raw.index[0].isoformat() if len(raw) else None,
+                           "last": raw.index[-1].isoformat() if len(raw) else None})
+            new_manifest["files"].append(record)
+            reports.append(report)
+        return PendingChange(store=self, base_sha256=_sha(manifest_bytes), old_manifest=manifest,
+                             new_manifest=new_manifest, full_frames=frames, dirty=dirty,
+                             log_parts=log_parts, reports=reports, now=now)
+
+    def _check_ingested(self, ing) -> pd.DataFrame:
+        raw = ing.raw
+        where = ing.path
+        if not isinstance(raw, pd.DataFrame):
+            raise StoreError("ingested data is not a table", file=where)
+        if not _STREAM_RE.fullmatch(str(ing.stream)):
+            raise StoreError(f"stream name {ing.stream!r} may hold only letters, digits, '_' and '-'", file=where)
+        if not isinstance(raw.index, pd.DatetimeIndex) or raw.index.tz is None:
+            raise StoreError("ingested rows are not stamped with time-zone-aware interval starts", file=where)
+        if not raw.index.is_unique:
+            dup = raw.index[raw.index.duplicated()][0]
+            raise StoreError(f"interval {dup.isoformat()} appears twice", file=where)
+        if not raw.index.is_monotonic_increasing:
+            raise StoreError("ingested rows are not in time order", file=where)
+        if pd.Timedelta(ing.interval) <= pd.Timedelta(0):
+            raise StoreError(f"interval {ing.interval!r} is not positive", file=where)
+        cols = [str(c) for c in raw.columns]
+        if len(set(cols)) != len(cols):
+            raise StoreError("ingested table has duplicate column names", file=where)
+        for c in cols:
+            if c.startswith("__") or c == INDEX_NAME:
+                raise StoreError(f"column name {c!r} is reserved by the store", file=where, column=c)
+        out = raw.copy()
+        out.columns = cols
+        out.index = raw.index.tz_convert("UTC").rename(INDEX_NAME)
+        return _clean_objects(out)
+
+    def _merge(self, stored, raw, ing, name, stream, interval, supersede, now, report):
+        sha = str(ing.sha256)
+        if stored is None or len(stored) == 0:
+            data = raw.copy()
+            data[PROVENANCE_COLUMNS["source_file"]] = name
+            data[PROVENANCE_COLUMNS["source_sha256"]] = sha
+            data[PROVENANCE_COLUMNS["ingested_at"]] = now
+            data[PROVENANCE_COLUMNS["changed_by_file"]] = None
+            data[PROVENANCE_COLUMNS["changed_by_sha256"]] = None
+            data.index = pd.DatetimeIndex(data.index, freq=None, name=INDEX_NAME)
+            report.new_rows = len(raw)
+            report.new_columns = list(raw.columns) if stored is None else \
+                [c for c in raw.columns if c not in stored.columns]
+            return data, None
+
+        stored_cols = [c for c in stored.columns if c not in _PROV]
+        new_cols = [c for c in raw.columns if c not in stored_cols]
+        common = [c for c in raw.columns if c in stored_cols]
+        overlap = stored.index.intersection(raw.index)
+        n_ov = len(overlap)
+        s_pos = stored.index.get_indexer(overlap)
+        r_pos = raw.index.get_indexer(overlap)
+
+        differ = np.zeros((n_ov, len(common)), dtype=bool)
+        fill = np.zeros((n_ov, len(common)), dtype=bool)
+        compared = np.zeros((n_ov, len(common)), dtype=bool)  # both non-missing
+        for j, col in enumerate(common):
+            s = stored[col].to_numpy()[s_pos]
+            r = raw[col].to_numpy()[r_pos]
+            s_na = pd.isna(s)
+            r_na = pd.isna(r)
+            both = ~s_na & ~r_na
+            eq = np.ones(n_ov, dtype=bool)
+            if both.any():
+                eq[both] = _equal(s[both], r[both])
+            compared[:, j] = both
+            differ[:, j] = both & ~eq
+            fill[:, j] = s_na & ~r_na
+        extra = np.zeros(n_ov, dtype=bool)  # overlap rows with values in columns new to the stream
+        for col in new_cols:
+            extra |= ~pd.isna(raw[col].to_numpy()[r_pos])
+
+        n_compared = int(compared.sum())
+        n_differ = int(differ.sum())
+        rows_compared = int(compared.any(axis=1).sum())
+        if (n_compared and rows_compared * interval >= self.clock_reset_min_overlap
+                and n_differ / n_compared >= self.clock_reset_fraction):
+            raise StoreError(
+                f"{n_differ} of {n_compared} values overlapping the store over "
+                f"{_span(rows_compared * interval)} differ from the stored ones: this looks like a logger "
+                f"clock reset that restamped old data; file refused, nothing written", file=ing.path)
+
+        report.new_columns = new_cols
+        report.new_rows = int(len(raw) - n_ov)
+        report.conflicts = n_differ
+        report.filled_values = int(fill.sum()) + int(sum(
+            (~pd.isna(raw[c].to_numpy()[r_pos])).sum() for c in new_cols))
+        replace = fill | (differ if supersede else False)
+        changed = replace.any(axis=1) | extra
+        report.changed_rows = int(changed.sum())
+        report.superseded = n_differ if supersede else 0
+        report.identical_rows = int(n_ov - report.changed_rows - (differ.any(axis=1) & ~changed).sum())
+
+        # the merged frame: union of rows and columns
+        index = stored.index.union(raw.index)
+        out = stored.reindex(index)
+        for col in new_cols:
+            out[col] = raw[col].reindex(index)
+        new_only = ~index.isin(stored.index)
+        new_pos = raw.index.get_indexer(index[new_only])
+        for col in common:
+            values = out[col].to_numpy(copy=True)
+            incoming = raw[col].to_numpy()
+            if values.dtype != incoming.dtype and not (values.dtype.kind == "f" and incoming.dtype.kind in "fiu"):
+                values = values.astype(object)
+            values[new_only] = incoming[new_pos]
+            col_j = common.index(col)
+            rows = np.flatnonzero(replace[:, col_j])
+            if len(rows):
+                values[index.get_indexer(overlap[rows])] = incoming[r_pos[rows]]
+            out[col] = values
+        out = out[stored_cols + new_cols + list(_PROV)]
+        pc = PROVENANCE_COLUMNS
+        out.loc[new_only, pc["source_file"]] = name
+        out.loc[new_only, pc["source_sha256"]] = sha
+        out.loc[new_only, pc["ingested_at"]] = now
+        if changed.any():
+            where = index.get_indexer(overlap[changed])
+            for key, value in (("changed_by_file", name), ("changed_by_sha256", sha)):
+                col = out[pc[key]].to_numpy(dtype=object, copy=True)
+                col[where] = value
+                out[pc[key]] = col
+        out = _clean_objects(out)
+        out.index = pd.DatetimeIndex(out.index, freq=None, name=INDEX_NAME)
+
+        log = None
+        if n_differ:
+            rows, cols = np.nonzero(differ)
+            s_rows = s_pos[rows]
+            r_rows = r_pos[rows]
+            entries = []
+            for i, j, sr, rr in zip(rows, cols, s_rows, r_rows):
+                col = common[j]
+                sv = stored[col].iat[sr]
+                rv = raw[col].iat[rr]
+                numeric = isinstance(sv, (int, float, np.number)) and isinstance(rv, (int, float, np.number))
+                entries.append({
+                    "logged_at": now, "stream": stream, "timestamp_start": overlap[i], "column": col,
+                    "outcome": "superseded" if supersede else "kept_stored",
+                    "stored_value": float(sv) if numeric else np.nan,
+                    "new_value": float(rv) if numeric else np.nan,
+                    "stored_text": None if numeric else str(sv), "new_text": None if numeric else str(rv),
+                    "stored_file": stored[pc["changed_by_file"]].iat[sr] or stored[pc["source_file"]].iat[sr],
+                    "stored_sha256": stored[pc["changed_by_sha256"]].iat[sr] or stored[pc["source_sha256"]].iat[sr],
+                    "new_file": name, "new_sha256": sha,
+                })
+            log = pd.DataFrame(entries, columns=_LOG_COLUMNS)
+            what = "the new values replaced the stored ones" if supersede else "the stored values were kept"
+            report.warnings.append(f"{ing.path}: {n_differ} values differ from the store ({what}; "
+                                   "see the store's conflicts log)")
+        return out, log
+
+    def _commit(self, old_manifest, new_manifest, frames, dirty, log_parts, now) -> None:
+        import hashlib
+
+        created: list[Path] = []
+
+        def write_content(prefix: str, data: bytes) -> tuple[str, str]:
+            sha = hashlib.sha256(data).hexdigest()
+            name = f"{prefix}.{sha[:16]}.parquet"
+            path = self.root / name
+            if path.exists():
+                with contextlib.suppress(OSError):
+                    if hashlib.sha256(path.read_bytes()).hexdigest() == sha:
+                        return name, sha
+            existed = path.exists()
+            atomic_write_bytes(path, data)
+            if not existed:
+                created.append(path)
+            return name, sha
+
+        try:
+            for stream in sorted(dirty):
+                frame = frames[stream]
+                name, sha = write_content(f"stream-{stream}", parquet_bytes(frame))
+                entry = new_manifest["streams"][stream]
+                entry.update({"data": name, "sha256": sha, "rows": int(len(frame)),
+                              "columns": [c for c in frame.columns if c not in _PROV],
+                              "first": frame.index[0].isoformat() if len(frame) else None,
+                              "last": frame.index[-1].isoformat() if len(frame) else None})
+            if log_parts:
+                old_log = old_manifest.get("conflicts")
+                parts = []
+                if old_log:
+                    try:
+                        parts.append(self._read_verified(old_log["data"], old_log["sha256"]).reset_index(drop=True))
+                    except FileNotFoundError:
+                        raise StoreError("the conflicts log listed in the manifest is missing",
+                                         file=self.root / old_log["data"]) from None
+                parts.extend(log_parts)
+                log = pd.concat(parts, ignore_index=True)
+                log["timestamp_start"] = pd.to_datetime(log["timestamp_start"], utc=True)
+                log["logged_at"] = pd.to_datetime(log["logged_at"], utc=True)
+                name, sha = write_content("conflicts", parquet_bytes(log.reset_index(drop=True)))
+                new_manifest["conflicts"] = {"data": name, "sha256": sha, "rows": int(len(log))}
+            new_manifest["updated_at"] = now.isoformat()
+            text = json.dumps(new_manifest, indent=1, sort_keys=True, default=str) + "\n"
+            atomic_write_text(self.manifest_path, text)  # the commit point
+        except BaseException:
+            for path in created:
+                with contextlib.suppress(OSError):
+                    path.unlink()
+            raise
+        self._collect_garbage(new_manifest)
+
+    def _collect_garbage(self, manifest: dict) -> None:
+        keep = {e["data"] for e in manifest["streams"].values()}
+        if manifest.get("conflicts"):
+            keep.add(manifest["conflicts"]["data"])
+        for entry in self.root.iterdir():
+            if entry.name in keep:
+                continue
+            if _DATA_FILE_RE.fullmatch(entry.name) or _LOG_FILE_RE.fullmatch(entry.name):
+                with contextlib.suppress(OSError):
+                    entry.unlink()
+
+
+def _minutes(delta: pd.Timedelta) -> str:
+    minutes = delta.total_seconds() / 60
+    return f"{minutes:g}-minute"
+
+
+def _span(delta: pd.Timedelta) -> str:
+    hours = delta.total_seconds() / 3600
+    return f"{hours / 24:.1f} days" if hours >= 24 else f"{hours:g} hours"
+
+
+def _sha(data: bytes | None) -> str | None:
+    import hashlib
+
+    return None if data is None else hashlib.sha256(data).hexdigest()
+
+
+class PendingChange:
+    """A merge prepared in memory by :meth:`SiteStore.prepare`, not yet written.
+
+    Attributes
+    ----------
+    store_root : Path
+        The store folder.
+    frames : dict of str to DataFrame
+        Raw frames per stream (source columns, index ``timestamp_start`` UTC) as the store
+        will hold them after :meth:`commit`; the processing of a run works on these.
+    reports : list of AddReport
+    report : dict
+        JSON-ready totals: ``files`` (one dict per file), ``new_rows`` (per stream),
+        ``conflicts``, ``superseded``, ``filled_values``, ``already_ingested``.
+    warnings : list of str
+        One-line warnings (conflicts found).
+    """
+
+    def __init__(self, *, store: SiteStore, base_sha256, old_manifest, new_manifest, full_frames,
+                 dirty, log_parts, reports, now):
+        self._store = store
+        self.store_root = store.root
+        self.base_sha256 = base_sha256
+        self._old = old_manifest
+        self._new = new_manifest
+        self._full = full_frames
+        self._dirty = set(dirty)
+        self._log_parts = list(log_parts)
+        self.reports = list(reports)
+        self._now = now
+        self.committed = False
+
+    @property
+    def changed(self) -> bool:
+        """True if committing writes anything (some file was not in the store yet)."""
+        return len(self._new["files"]) != len(self._old["files"])
+
+    @property
+    def frames(self) -> dict[str, pd.DataFrame]:
+        return {s: f.drop(columns=[c for c in _PROV if c in f.columns]) for s, f in self._full.items()}
+
+    @property
+    def warnings(self) -> list[str]:
+        return [w for r in self.reports for w in r.warnings]
+
+    @property
+    def report(self) -> dict:
+        new_rows: dict[str, int] = {}
+        for r in self.reports:
+            new_rows[r.stream] = new_rows.get(r.stream, 0) + r.new_rows
+        return {
+            "files": [asdict(r) for r in self.reports],
+            "new_rows": new_rows,
+            "conflicts": sum(r.conflicts for r in self.reports),
+            "superseded": sum(r.superseded for r in self.reports),
+            "filled_values": sum(r.filled_values for r in self.reports),
+            "already_ingested": sum(r.already_ingested for r in self.reports),
+        }
+
+    def commit(self) -> None:
+        """Write the change atomically (under the store's lock); a no-op if nothing changed.
+
+        Raises
+        ------
+        StoreError
+            The store changed since :meth:`SiteStore.prepare` read it (another run committed
+            first): nothing is written; run again. Or the store is locked.
+        """
+        if self.committed or not self.changed:
+            self.committed = True
+            return
+        store = self._store
+        with store.lock():
+            current, _ = store._load_manifest_raw()
+            if _sha(current) != self.base_sha256:
+                raise StoreError("the store changed since this run read it (another run on this site "
+                                 "committed first); nothing written: run again", file=store.manifest_path)
+            store._commit(self._old, self._new, self._full, self._dirty, self._log_parts, self._now)
+        self.committed = True
+
+    def save(self, folder) -> Path:
+        """Write the pending change to ``folder`` (for hand-over between processes)."""
+        folder = Path(folder)
+        folder.mkdir(parents=True, exist_ok=True)
+        streams = sorted(self._full)
+        for i, stream in enumerate(streams):
+            atomic_write_bytes(folder / f"frame-{i}.parquet", parquet_bytes(self._full[stream]))
+        for i, part in enumerate(self._log_parts):
+            atomic_write_bytes(folder / f"log-{i}.parquet", parquet_bytes(part))
+        meta = {"store_root": str(self.store_root), "base_sha256": self.base_sha256,
+                "old_manifest": self._old, "new_manifest": self._new, "streams": streams,
+                "dirty": sorted(self._dirty), "n_log_parts": len(self._log_parts),
+                "reports": [asdict(r) for r in self.reports], "now": self._now.isoformat(),
+                "clock_reset_fraction": self._store.clock_reset_fraction,
+                "clock_reset_min_overlap": str(self._store.clock_reset_min_overlap)}
+        atomic_write_text(folder / "pending.json", json.dumps(meta, default=str))
+        return folder
+
+
+def load_pending(folder) -> PendingChange:
+    """Read back a :class:`PendingChange` written by :meth:`PendingChange.save`."""
+    import pyarrow.parquet as pq
+
+    folder = Path(folder)
+    try:
+        meta = json.loads((folder / "pending.json").read_text(encoding="utf-8"))
+        full = {}
+        for i, stream in enumerate(meta["streams"]):
+            frame = pq.read_table(folder / f"frame-{i}.parquet").to_pandas()
+            frame.index = pd.DatetimeIndex(frame.index, name=INDEX_NAME)
+            full[stream] = frame
+        parts = [pq.read_table(folder / f"log-{i}.parquet").to_pandas() for i in range(meta["n_log_parts"])]
+    except (OSError, ValueError, KeyError) as exc:
+        raise StoreError(f"pending store change is unreadable ({type(exc).__name__})", file=folder) from None
+    store = SiteStore(meta["store_root"], clock_reset_fraction=meta["clock_reset_fraction"],
+                      clock_reset_min_overlap=meta["clock_reset_min_overlap"])
+    return PendingChange(store=store, base_sha256=meta["base_sha256"], old_manifest=meta["old_manifest"],
+                         new_manifest=meta["new_manifest"], full_frames=full, dirty=meta["dirty"],
+                         log_parts=parts, reports=[AddReport(**r) for r in meta["reports"]],
+                         now=pd.Timestamp(meta["now"]))
