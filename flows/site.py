@@ -88,6 +88,7 @@ def ingest_task(config_path: str, files: list[str], out_dir: str, supersede: boo
     from towerflow.runner import prepare_site
 
     prepared = prepare_site(config_path, files, out_dir, supersede=supersede, rules_spec=rules_spec)
+    prepared.site_dir.mkdir(parents=True, exist_ok=True)
     work = Path(tempfile.mkdtemp(prefix=".work-", dir=prepared.site_dir))
     save_state(prepared.state, work)
     prepared.pending.save(work / "pending-store")
@@ -145,6 +146,10 @@ def site_flow(config_path: str, files: list[str], out_dir: str, supersede: bool 
         site_dir = outputs_task(work)
     finally:
         shutil.rmtree(work, ignore_errors=True)
+        try:  # a failed first run leaves no empty site folder behind
+            Path(work).parent.rmdir()
+        except OSError:
+            pass
     if report:
         report_task(site_dir)
     return site_dir

@@ -33,8 +33,9 @@ Fill methods (``le_fill_method``, ``h_fill_method``)
 
 Quality classes (``<flux>_fill_quality``): ``measured``; for filled values ``good``,
 ``fair`` or ``poor`` (mapping in :mod:`pipeline.gapfill_similar` and
-:mod:`pipeline.gapfill_penman`; a fill from filled drivers is lowered one class);
-``not_filled`` where nothing was filled.
+:mod:`pipeline.gapfill_penman`; a fill from filled drivers is lowered one class, and so is
+a fill of an interval under snow or frozen conditions, since QC rejects the fluxes there and
+no accepted analogue shares that surface state); ``not_filled`` where nothing was filled.
 
 Strategies and the site's choice
 --------------------------------
@@ -44,9 +45,14 @@ rest). For H: ``similar_conditions`` and ``energy_balance_residual`` (residual b
 Reichstein sequence for the rest). Accepted intervals are hidden in artificial gaps
 whose lengths are drawn from the site's own gap-length distribution (seeded; at most
 ``cross_validation_max_intervals`` hidden intervals), each strategy fills them, and the
-strategy with the smaller RMSE is chosen (``summary["fill_choice"]``). ``fill_skill``
-reports RMSE, bias (filled − measured), R² (1 − SSres/SStot) and n of the chosen
-strategy, and per method within it (``by_method``).
+strategy with the smaller RMSE is chosen (``summary["fill_choice"]``, with every
+candidate's skill). ``fill_skill`` reports RMSE, bias (filled − measured), R²
+(1 − SSres/SStot) and n of the chosen strategy per flux, and ``by_method[flux][method]``
+the same for the values each method filled within it. LE and H are hidden together.
+
+Windows are widened where needed so that every gap up to ``max_fill_length`` has accepted
+values within reach: the widest window used is max(``widest_window``,
+``max_fill_length`` / 2 + 7 d).
 
 References
 ----------
@@ -68,7 +74,7 @@ from .errors import warn
 from .gapfill_drivers import FILLED_DRIVER_METHODS, fill_met_drivers, run_length, runs
 from .gapfill_penman import (aerodynamic_conductance_for_filling, energy_balance_residual_fill,
                              penman_monteith_fill)
-from .gapfill_similar import fill_similar_conditions, similarity_steps
+from .gapfill_similar import fill_similar_conditions, lower_quality, similarity_steps
 from .rules import duration, standard_rules
 from .stage import StageResult
 
@@ -121,8 +127,10 @@ def _similar(ctx: _Context, target, to_fill):
         steps=ctx.steps, min_samples=int(g["min_similar_samples"]),
         drivers_filled=ctx.drivers_filled)
     if not ctx.radiation_measured:
-        method = np.array([m.replace("similar_conditions", "similar_conditions_potential_radiation", 1)
-                           if m.startswith("similar_conditions") else m for m in method], dtype=object)
+        renamed = method.copy()
+        renamed[method == "similar_conditions"] = "similar_conditions_potential_radiation"
+        renamed[method == "similar_conditions_radiation_only"] = "similar_conditions_potential_radiation_only"
+        method = renamed
     return est, sd, method, quality
 
 
@@ -384,6 +392,8 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
                                               obs["le"], le_out[0], le_out[3])
     h_out = _assemble("h", obs["h"], acc["h"], h_est, h_sd, h_m, h_q)
     for flux, (val, sd, method, quality) in (("le", le_out), ("h", h_out)):
+        # under snow or frozen conditions no accepted analogue shares the surface state
+        quality = lower_quality(quality, snow & ~acc[flux] & np.isfinite(val))
         cols[f"{flux}_filled"] = val
         cols[f"{flux}_fill_method"] = method
         cols[f"{flux}_fill_quality"] = quality
@@ -416,10 +426,13 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
         "long_gaps": long_summary,
         "driver_fill": {**drv_summary, "ga_wind_relation": ga_relation,
                         "ga_source": _counts(ga_source)},
-        "fill_methods": {flux: _counts(cols[f"{flux}_fill_method"]) for flux in ("le", "h")},
-        "penman_monteith": {k: v for k, v in le_info.items()} if le_info else {},
-        "energy_balance_residual": h_info if h_info else {},
     }
+    for flux in ("le", "h"):
+        choice[flux]["method_counts"] = _counts(cols[f"{flux}_fill_method"])
+    if le_info:
+        choice["le"]["penman_monteith_fit"] = le_info
+    if h_info:
+        choice["h"]["closure_ratio"] = h_info
     daily = _daily(index, long_gap)
     return StageResult(columns=columns, summary=summary, warnings=warnings_out, daily=daily)
 
@@ -431,12 +444,13 @@ def _widest(g: dict) -> pd.Timedelta:
 
 
 def _best(candidates: dict) -> str:
-    scored = [(c["rmse"], name) for name, c in candidates.items() if c["rmse"] is not None]
-    return min(scored)[1] if scored else "similar_conditions"
+    # ties (e.g. Penman–Monteith not applicable anywhere) go to the simpler look-up
+    scored = [(c["rmse"], name != "similar_conditions", name) for name, c in candidates.items()
+              if c["rmse"] is not None]
+    return min(scored)[2] if scored else "similar_conditions"
 
 
 def _assemble(flux, obs, acc, est, sd, method, quality):
-    n = obs.size
     val = np.where(acc, obs, est)
     sd_out = np.where(acc, np.nan, sd)
     m = np.where(acc, "measured", method).astype(object)
@@ -445,7 +459,6 @@ def _assemble(flux, obs, acc, est, sd, method, quality):
     m[none] = "not_filled"
     q[none] = "not_filled"
     sd_out[none] = np.nan
-    assert m.size == n
     return val, sd_out, m, q
 
 

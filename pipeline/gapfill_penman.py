@@ -21,8 +21,9 @@ intervals.
 **ga.** Where u* and wind were accepted, ga = :func:`pipeline.micromet.aerodynamic_conductance`.
 When the sonic anemometer is out (u* missing), ga comes from the wind speed through the
 relation ln ga = α + β ln(wind) fitted at the site on intervals with both; without wind
-too, the site's median ga is used. A fill resting on such a ga is lowered one quality
-class.
+too, the site's median ga is used. A Penman–Monteith fill is ``good``, lowered one class
+where it rests on such a ga, on the site-wide gs fit (too few data in its window) or on
+filled rg, ta or vpd.
 
 **H.** ``energy_balance_residual``: H = c · A − LE_filled, with c = Σ(H + LE) / ΣA over the
 accepted daytime intervals of the moving window (the site's own closure), by day only.
@@ -263,6 +264,9 @@ def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, availabl
         est[targets] = le_pred[targets]
         sd[targets] = spread
     done = np.isfinite(est)
+    if (done & ~np.isfinite(sd)).any():  # windows without enough residuals: the median spread
+        spreads = sd[done & np.isfinite(sd)]
+        sd[done & ~np.isfinite(sd)] = np.median(spreads) if spreads.size else np.nan
     method[done] = "penman_monteith_conductance"
     lower = site_wide | (ga_source != "measured")
     for name in ("rg", "ta", "vpd"):
@@ -329,6 +333,9 @@ def energy_balance_residual_fill(h_obs, le_obs, le_filled, le_quality, to_fill, 
         mean_r = (r1[hi] - r1[lo]) / k
         var = ((r2[hi] - r2[lo]) - k * mean_r ** 2) / (k - 1)
     sd_block = np.sqrt(np.clip(var, 0.0, None))
+    site_resid = resid[both]
+    site_sd = float(np.std(site_resid, ddof=1)) if site_resid.size > 1 else np.nan
+    sd_block = np.where(k >= min_samples, sd_block, site_sd)
     apply = to_fill & is_day & np.isfinite(a) & np.isfinite(le_filled)
     est[apply] = c[apply] * a[apply] - le_filled[apply]
     sd[apply] = sd_block[labels][apply]

@@ -71,6 +71,8 @@ __all__ = [
 SNAP_TOLERANCE = 0.10
 #: minimum share of sub-intervals present for an aggregated mean (common practice)
 MIN_SHARE = 2.0 / 3.0
+#: rows parsed per chunk: memory stays near the output plus one chunk for files of any size
+CHUNK_ROWS = 200_000
 #: delimiters detected in the header line, in order of preference on a tie
 DELIMITERS = (",", ";", "\t")
 #: a file-order jump larger than this, which the day/month-swapped reading removes, is a swap
@@ -278,19 +280,21 @@ def assign_stream(path, cfg: SiteConfig) -> StreamConfig:
 # =======================================================================================
 # read_logger_file
 # =======================================================================================
-def _csv_table(path: Path, header: _Header, stream: StreamConfig) -> pd.DataFrame:
-    """The used columns as read by pandas' C parser (strings for timestamps)."""
+def _csv_chunks(path: Path, header: _Header, stream: StreamConfig):
+    """The used columns as read by pandas' C parser (strings for timestamps), in chunks."""
     needed = _stream_needs(stream)
     ts = set(stream.timestamp_column)
     str_missing = [str(m) for m in stream.missing]
     skip = sorted({int(r) + 1 for r in stream.skip_rows})  # file lines, header = 0
     try:
-        return pd.read_csv(
+        reader = pd.read_csv(
             path, sep=header.delimiter, decimal=stream.decimal, header=0, usecols=needed,
             dtype={c: str for c in ts}, na_values=str_missing, keep_default_na=True,
             skiprows=skip or None, skip_blank_lines=False, encoding=header.encoding,
-            engine="c", skipinitialspace=True,
+            engine="c", skipinitialspace=True, chunksize=CHUNK_ROWS,
         )
+        for chunk in reader:
+            yield chunk.reset_index(drop=True)
     except UnicodeDecodeError:
         raise _decode_error(path, header.encoding) from None
     except pd.errors.EmptyDataError:
@@ -301,6 +305,19 @@ def _csv_table(path: Path, header: _Header, stream: StreamConfig) -> pd.DataFram
             raise InputError(f"{m.group(3)} fields where the header has {m.group(1)}",
                              file=path, row=int(m.group(2))) from None
         raise InputError(f"not a readable delimited table ({' '.join(str(exc).split())})", file=path) from None
+
+
+def _with_last(iterable):
+    """Yield ``(item, is_last)`` with one item of look-ahead."""
+    it = iter(iterable)
+    try:
+        current = next(it)
+    except StopIteration:
+        return
+    for nxt in it:
+        yield current, False
+        current = nxt
+    yield current, True
 
 
 def _line_numbers(n_rows: int, skip_rows) -> np.ndarray:
@@ -317,6 +334,7 @@ class _Scan:
     overfull_line: int | None  # first line with more fields than the header
     overfull_fields: int
     last_fields: int | None  # fields on the last non-blank line
+    n_lines: int  # lines in the file, header included
 
 
 def _scan_file(path: Path, delimiter: str, n_fields: int, block: int = 1 << 22) -> _Scan:
@@ -338,11 +356,11 @@ def _scan_file(path: Path, delimiter: str, n_fields: int, block: int = 1 << 22) 
             ends = np.append(ends, arr.size)  # last line without a newline
         if ends.size == 0:
             return
-        cum_d = np.concatenate([[0], np.cumsum(arr == d)])
-        cum_q = np.concatenate([[0], np.cumsum(arr == quote)])
         starts = np.concatenate([[0], ends[:-1] + 1])
-        fields = cum_d[ends] - cum_d[starts] + 1
-        quoted = (cum_q[ends] - cum_q[starts]) > 0
+        at_d = np.flatnonzero(arr == d)
+        fields = np.searchsorted(at_d, ends) - np.searchsorted(at_d, starts) + 1
+        at_q = np.flatnonzero(arr == quote)
+        quoted = (np.searchsorted(at_q, ends) - np.searchsorted(at_q, starts)) > 0
         length = ends - starts
         cr = np.zeros(length.size, dtype=bool)
         has = length > 0
@@ -366,7 +384,7 @@ def _scan_file(path: Path, delimiter: str, n_fields: int, block: int = 1 << 22) 
             carry = buf[cut:]
     if carry:
         count(carry, final=True)
-    return _Scan(digest.hexdigest(), overfull, overfull_k, last)
+    return _Scan(digest.hexdigest(), overfull, overfull_k, last, lines_before)
 
 
 def _to_float(column: pd.Series, decimal: str) -> tuple[np.ndarray, np.ndarray]:
@@ -414,13 +432,13 @@ def _timestamp_text(df: pd.DataFrame, stream: StreamConfig) -> pd.Series:
     """The timestamp columns joined by one space, hhmm-type tokens zero-padded."""
     cols = list(stream.timestamp_column)
     tokens = stream.timestamp_format.split()
-    parts = [df[c].astype("string").str.strip() for c in cols]
+    parts = [df[c] for c in cols]  # object columns of str (NaN where empty)
     if len(parts) == 1 and len(tokens) > 1 and any(t in _PAD_WIDTH for t in tokens):
         split = parts[0].str.split(n=len(tokens) - 1, expand=True)
         if split.shape[1] == len(tokens):
             parts = [split[i] for i in range(len(tokens))]
     if len(parts) == len(tokens):
-        parts = [p.str.zfill(_PAD_WIDTH[t]) if t in _PAD_WIDTH else p for p, t in zip(parts, tokens)]
+        parts = [p.str.strip().str.zfill(_PAD_WIDTH[t]) if t in _PAD_WIDTH else p for p, t in zip(parts, tokens)]
     text = parts[0]
     for p in parts[1:]:
         text = text + " " + p
@@ -434,6 +452,8 @@ def _parse_stamps(text: pd.Series, fmt: str) -> tuple[pd.Series, np.ndarray]:
     if not failed.any():
         return stamps, failed
     stamps = stamps.copy()
+    text = text.copy()
+    text[failed] = text[failed].str.strip()  # stray white space
     sub = text[failed]
     midnight = sub.str.replace(_HOUR_24, r"00\g<1>00", regex=True)
     is24 = (midnight != sub).fillna(False)
@@ -570,67 +590,103 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
         raise InputError(f"{scan.overfull_fields} fields where the header has {len(header.names)} "
                          "(a stray delimiter, or a decimal comma in a comma-separated file?)",
                          file=path, row=scan.overfull_line)
-    df = _csv_table(path, header, stream)
-    lines = _line_numbers(len(df), stream.skip_rows)
-
     ts_cols = list(stream.timestamp_column)
-    value_cols = stream.source_columns()
-    # blank lines (kept so that line numbers stay exact) are dropped
-    blank = df.isna().all(axis=1).to_numpy()
-    if blank.any():
-        df, lines = df.loc[~blank], lines[~blank]
-    # a truncated last line (fewer fields than the header) is dropped with a warning
-    n_last = scan.last_fields
-    if len(df) and n_last is not None and n_last < len(header.names):
-        warnings_.append(f"{path}: row {lines[-1]}: last line has {n_last} of {len(header.names)} fields "
-                         "(truncated write): dropped")
-        df, lines = df.iloc[:-1], lines[:-1]
-    if len(df) == 0:
-        raise InputError("no data rows after the header (header only)", file=path)
-
-    # ---- values -----------------------------------------------------------------------
     numeric_cols = list(dict.fromkeys([c for cols in stream.columns.values() for c in cols]
                                       + [f.column for f in stream.flags.values()]))
+    pass_cols = [c for c in stream.source_columns() if c not in numeric_cols]
     sentinels = _numeric_sentinels(stream.missing)
-    data: dict[str, object] = {}
-    n_bad = 0
-    for col in numeric_cols:
-        values, bad = _to_float(df[col], stream.decimal)
-        if bad.any():
-            k = int(bad.sum())
-            first = int(np.argmax(bad))
-            n_bad += k
-            warnings_.append(f"{path}: column {col!r}: {k} non-numeric cell{'s' if k > 1 else ''} set missing "
-                             f"(first at row {lines[first]}: {_short(df[col].iloc[first])})")
-        if sentinels.size:
-            values[np.isin(values, sentinels)] = np.nan
-        data[col] = values
-    for col in value_cols:
-        if col not in data:  # passthrough, as read
-            data[col] = df[col].to_numpy()
-
-    # ---- timestamps -------------------------------------------------------------------
-    text = _timestamp_text(df, stream).reset_index(drop=True)
-    no_stamp = text.isna().to_numpy()
-    if no_stamp.any():
-        i = int(np.argmax(no_stamp))
-        raise InputError("empty timestamp", file=path, row=int(lines[i]), column=ts_cols[0])
     fmt = stream.timestamp_format
-    stamps, failed = _parse_stamps(text, fmt)
-    if failed.any():
-        i = int(np.argmax(failed))
-        swapped = _swap_day_month(fmt)
-        if swapped != fmt:
-            alt, alt_failed = _parse_stamps(text[failed], swapped)
-            if not alt_failed.all():
-                j = int(np.flatnonzero(failed)[int(np.argmax(~alt_failed))])
-                raise InputError(
-                    f"timestamp {_short(text.iloc[j], 40)} does not fit timestamp_format {fmt!r} but does with "
-                    "day and month swapped: day and month look swapped (a file edited in a spreadsheet?)",
-                    file=path, row=int(lines[j]), column=" ".join(ts_cols))
-        raise InputError(f"timestamp {_short(text.iloc[i], 40)} does not match timestamp_format {fmt!r}",
-                         file=path, row=int(lines[i]), column=" ".join(ts_cols))
-    _check_swapped_jumps(path, text, stamps, lines, fmt)
+
+    # preallocated outputs, filled chunk by chunk (no Python loop over rows)
+    cap = max(scan.n_lines - 1, 1)
+    matrix = np.full((cap, len(numeric_cols)), np.nan)
+    local = np.empty(cap, dtype="datetime64[ns]")
+    keep = np.zeros(cap, dtype=bool)
+    all_lines = _line_numbers(cap, stream.skip_rows)
+    passed: dict[str, list] = {c: [] for c in pass_cols}
+    bad_cells: dict[str, list] = {}  # column -> [count, first line, first text]
+    previous = None  # (text, stamp, line) of the last stamped row of the previous chunk
+    pos = 0
+    truncated = scan.last_fields is not None and scan.last_fields < len(header.names)
+    for chunk, is_last in _with_last(_csv_chunks(path, header, stream)):
+        m = len(chunk)
+        if pos + m > cap:  # more rows than lines counted (quoted line breaks): grow
+            grow = pos + m - cap
+            matrix = np.vstack([matrix, np.full((grow, matrix.shape[1]), np.nan)])
+            local = np.concatenate([local, np.empty(grow, dtype=local.dtype)])
+            keep = np.concatenate([keep, np.zeros(grow, dtype=bool)])
+            all_lines = _line_numbers(pos + m, stream.skip_rows)
+            cap = pos + m
+        lines = all_lines[pos:pos + m]
+        # blank lines (kept so that line numbers stay exact): no timestamp and no value
+        blank = chunk[ts_cols[0]].isna().to_numpy()
+        if blank.any():
+            blank[blank] = chunk.loc[blank].isna().all(axis=1).to_numpy()
+        if is_last and truncated and not blank.all():
+            # a truncated last line (fewer fields than the header): dropped with a warning
+            last = int(np.flatnonzero(~blank)[-1])
+            blank[last] = True
+            warnings_.append(f"{path}: row {lines[last]}: last line has {scan.last_fields} of "
+                             f"{len(header.names)} fields (truncated write): dropped")
+        keep[pos:pos + m] = ~blank
+        for j, col in enumerate(numeric_cols):
+            values, bad = _to_float(chunk[col], stream.decimal)
+            if bad.any():
+                first = int(np.argmax(bad))
+                entry = bad_cells.setdefault(col, [0, int(lines[first]), _short(chunk[col].iloc[first])])
+                entry[0] += int(bad.sum())
+            if sentinels.size:
+                values[np.isin(values, sentinels)] = np.nan
+            matrix[pos:pos + m, j] = values
+        for col in pass_cols:
+            passed[col].append(chunk[col].to_numpy())
+
+        stamped = np.flatnonzero(~blank)
+        text = _timestamp_text(chunk.iloc[stamped], stream).reset_index(drop=True)
+        tlines = lines[stamped]
+        no_stamp = text.isna().to_numpy()
+        if no_stamp.any():
+            i = int(np.argmax(no_stamp))
+            raise InputError("empty timestamp", file=path, row=int(tlines[i]), column=ts_cols[0])
+        stamps, failed = _parse_stamps(text, fmt)
+        if failed.any():
+            i = int(np.argmax(failed))
+            swapped = _swap_day_month(fmt)
+            if swapped != fmt:
+                alt, alt_failed = _parse_stamps(text[failed], swapped)
+                if not alt_failed.all():
+                    j = int(np.flatnonzero(failed)[int(np.argmax(~alt_failed))])
+                    raise InputError(
+                        f"timestamp {_short(text.iloc[j], 40)} does not fit timestamp_format {fmt!r} but does "
+                        "with day and month swapped: day and month look swapped (a file edited in a spreadsheet?)",
+                        file=path, row=int(tlines[j]), column=" ".join(ts_cols))
+            raise InputError(f"timestamp {_short(text.iloc[i], 40)} does not match timestamp_format {fmt!r}",
+                             file=path, row=int(tlines[i]), column=" ".join(ts_cols))
+        if len(text):
+            if previous is None:
+                _check_swapped_jumps(path, text, stamps, tlines, fmt)
+            else:
+                _check_swapped_jumps(path, pd.concat([pd.Series([previous[0]]), text], ignore_index=True),
+                                     pd.concat([pd.Series([previous[1]]), stamps], ignore_index=True),
+                                     np.concatenate([[previous[2]], tlines]), fmt)
+            previous = (text.iloc[-1], stamps.iloc[-1], tlines[-1])
+            local[pos + stamped] = stamps.to_numpy()
+        pos += m
+
+    keep = keep[:pos]
+    lines = all_lines[:pos]
+    if not keep.any():
+        raise InputError("no data rows after the header (header only)", file=path)
+    for col, (k, first_line, first_text) in bad_cells.items():
+        warnings_.append(f"{path}: column {col!r}: {k} non-numeric cell{'s' if k > 1 else ''} set missing "
+                         f"(first at row {first_line}: {first_text})")
+    n_bad = int(sum(v[0] for v in bad_cells.values()))
+    everything = bool(keep.all())
+    matrix = matrix[:pos] if everything else matrix[:pos][keep]  # a view when nothing is dropped
+    lines = lines if everything else lines[keep]
+    stamps = pd.Series(local[:pos] if everything else local[:pos][keep])
+    passthrough = {c: (np.concatenate(parts) if parts else np.empty(0, dtype=object)) for c, parts in passed.items()}
+    passthrough = {c: (v if everything else v[keep]) for c, v in passthrough.items()}
 
     if stream.interval_minutes:
         interval = pd.Timedelta(minutes=stream.interval_minutes)
@@ -650,17 +706,20 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
     beyond = (off > tolerance).to_numpy()
     if beyond.any():
         i = int(np.argmax(beyond))
-        raise InputError(f"stamp {text.iloc[i]!r} is {off.iloc[i]} off the {interval} grid "
+        raise InputError(f"stamp {stamps.iloc[i]:%Y-%m-%d %H:%M:%S} is {off.iloc[i]} off the {interval} grid "
                          f"(more than the {tolerance} tolerance)", file=path, row=int(lines[i]),
                          column=" ".join(ts_cols))
     moved = (off > pd.Timedelta(0)).to_numpy()
     if moved.any():
         i = int(np.argmax(moved))
         warnings_.append(f"{path}: {int(moved.sum())} stamps up to {off.max()} off the grid snapped to the "
-                         f"nearest interval (first at row {lines[i]}: {text.iloc[i]!r})")
+                         f"nearest interval (first at row {lines[i]}: {stamps.iloc[i]:%Y-%m-%d %H:%M:%S})")
     utc = (snapped - pd.Timedelta(hours=site.utc_offset_hours)).dt.tz_localize("UTC")
 
-    raw = pd.DataFrame(data, index=pd.DatetimeIndex(utc, name="timestamp_start"))
+    index = pd.DatetimeIndex(utc, name="timestamp_start")
+    raw = pd.DataFrame(matrix, columns=numeric_cols, index=index, copy=False)
+    for col, values in passthrough.items():
+        raw[col] = values  # as read
 
     # ---- order ------------------------------------------------------------------------
     if not raw.index.is_monotonic_increasing:

@@ -338,8 +338,9 @@ def test_site_without_rg():
     assert np.isfinite(c["le_filled"]).all() and np.isfinite(c["h_filled"]).all()
     assert (c["rg_fill_method"] == "unavailable").all()
     methods = set(c["le_fill_method"][hidden])
-    assert methods & {"similar_conditions_potential_radiation", "penman_monteith_conductance"}
-    assert "similar_conditions" not in methods
+    assert "similar_conditions_potential_radiation" in methods
+    assert methods <= {"similar_conditions_potential_radiation", "similar_conditions_potential_radiation_only",
+                       "mean_diurnal_course", "penman_monteith_conductance"}
     # the stand-in is always lowered: no look-up fill is 'good'
     lut = c["le_fill_method"].str.startswith("similar_conditions_potential").to_numpy()
     assert not (c["le_fill_quality"][lut] == "good").any()
@@ -480,3 +481,93 @@ def test_inputs_not_mutated_and_rules_defaults():
     pd.testing.assert_frame_equal(frame, f0)
     pd.testing.assert_frame_equal(flags, g0)
     assert gapfill_rules({})["tolerance_rg"] == 50.0  # Reichstein et al. 2005
+
+
+def test_fill_from_filled_drivers_is_lowered():
+    """LE and ta out together for a day: no fill there is 'good' (drivers filled: one class lower)."""
+    frame, flags, site = simulate(days=30, seed=16)
+    out = np.zeros(len(frame), bool)
+    out[12 * 48:13 * 48] = True
+    res = quiet_fill(frame, reject(flags, ["le", "h", "ta", "vpd", "rh"], out), site, standard_rules())
+    c = res.columns
+    assert (c["ta_fill_method"][out] == "mean_diurnal_course").all()
+    assert set(c["le_fill_quality"][out]) <= {"fair", "poor"}
+    assert np.isfinite(c["le_filled"][out]).all()
+
+
+def test_neighbour_site_fills_rg_by_day_and_zero_at_night():
+    """rg out for 3 days; a neighbour (invented) with a 10 % brighter pyranometer fills the days."""
+    frame, flags, site = simulate(days=30, seed=17)
+    rng = np.random.default_rng(2)
+    nb = pd.DataFrame({"rg": 1.1 * frame["rg"].to_numpy() + rng.normal(0, 5, len(frame)).clip(0)},
+                      index=frame.index)
+    gap = np.zeros(len(frame), bool)
+    gap[10 * 48:13 * 48] = True
+    res = quiet_fill(frame, reject(flags, ["rg"], gap), site, standard_rules(),
+                     neighbours={"invented-valley": nb})
+    c = res.columns
+    r0 = solar.interval_mean_potential_radiation(frame.index, site.interval, site.latitude, site.longitude)
+    day = gap & (r0 > 0)
+    assert (c["rg_fill_method"][day] == "neighbour_site_regression").all()
+    assert (c["rg_fill_source"][day] == "invented-valley").all()
+    assert (c["rg_filled"][gap & (r0 <= 0)] == 0.0).all()
+    err = c["rg_filled"].to_numpy()[day] - frame["rg"].to_numpy()[day]
+    assert np.sqrt(np.mean(err ** 2)) < 10.0  # regression noise 5/1.1 W m-2
+
+
+def test_snow_intervals_filled_with_lower_quality():
+    """Intervals marked snow_or_frozen (fluxes rejected there) are filled, never as 'good'."""
+    frame, flags, site = simulate(days=30, seed=18)
+    snow = np.zeros(len(frame), bool)
+    snow[15 * 48:17 * 48] = True
+    frame = frame.assign(snow_or_frozen=snow)
+    res = quiet_fill(frame, reject(flags, ["le", "h"], snow, bit=1024), site, standard_rules())
+    c = res.columns
+    assert np.isfinite(c["le_filled"][snow]).all()
+    assert not (c["le_fill_quality"][snow] == "good").any()
+    assert not (c["le_fill_method"][snow] == "penman_monteith_conductance").any()
+
+
+def test_without_rn_look_up_only():
+    """No rn: a warning; Penman–Monteith and the residual cannot run, so the look-up is chosen."""
+    frame, flags, site = simulate(days=20, seed=19)
+    hidden = random_gaps(len(frame), 0.2, np.random.default_rng(4))
+    frame = frame.drop(columns=["rn", "g"])
+    flags = flags.drop(columns=["rn", "g"])
+    with pytest.warns(TowerflowWarning, match="no rn"):
+        res = fill_gaps(frame, reject(flags, ["le", "h"], hidden), site, standard_rules())
+    assert res.summary["fill_choice"]["le"]["chosen"] == "similar_conditions"
+    assert res.summary["fill_choice"]["h"]["chosen"] == "similar_conditions"
+    assert np.isfinite(res.columns["le_filled"]).all()
+
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 10_000), fraction=st.floats(0.05, 0.8),
+       tol_rg=st.sampled_from([10.0, 50.0, 200.0]), tol_ta=st.sampled_from([0.5, 2.5]),
+       interval_minutes=st.sampled_from([30, 60]), min_samples=st.integers(1, 4))
+def test_vectorised_equals_loop_property(seed, fraction, tol_rg, tol_ta, interval_minutes, min_samples):
+    """Random small records, gaps and tolerances: vectorised filler == per-gap loop (to 1e-12)."""
+    rng = np.random.default_rng(seed)
+    per_day = 1440 // interval_minutes
+    n = 12 * per_day
+    idx = pd.date_range("2025-07-01", periods=n, freq=f"{interval_minutes}min", tz="+01:00")
+    drivers = {"rg": np.round(rng.uniform(0, 800, n), 0),  # rounded: ties at the tolerance edge
+               "ta": np.round(rng.normal(15, 5, n), 1),
+               "vpd": rng.gamma(2, 0.4, n)}
+    drivers["rg"][rng.random(n) < 0.05] = np.nan
+    y = rng.normal(100, 60, n)
+    gaps = rng.random(n) < fraction
+    y[gaps] = np.nan
+    tol = {"rg": tol_rg, "ta": tol_ta, "vpd": 0.5}
+    steps = similarity_steps(pd.Timedelta("21 days"))
+    est, sd, method, _, _ = fill_similar_conditions(y, drivers, gaps, interval=pd.Timedelta(minutes=interval_minutes),
+                                                    tolerances=tol, steps=steps, min_samples=min_samples,
+                                                    chunk_elements=5_000)
+    ref_est, ref_sd, ref_method = reference_similar_conditions(idx, y, drivers, gaps, steps, tol, min_samples)
+    np.testing.assert_array_equal(method, ref_method)
+    np.testing.assert_allclose(est, ref_est, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(sd, ref_sd, rtol=1e-12, atol=1e-12, equal_nan=True)

@@ -564,3 +564,60 @@ def test_random_column_order_and_missing_cells(tmp_path, order, n, missing, drop
         expected[[i for i in range(n) if i not in keep]] = np.nan
         assert_allclose(frame[var].to_numpy(), expected, rtol=0, atol=0)
         assert np.array_equal(flags[var].to_numpy() == F.MISSING, np.isnan(expected))
+
+
+# ---------------------------------------------------------------------------------------
+# chunked reading: tiny chunks and blocks give the same result as one piece
+# ---------------------------------------------------------------------------------------
+def _messy_file(tmp_path):
+    rows = []
+    for i, t in enumerate(pd.date_range("2025-06-01 00:00", periods=23, freq="30min")):
+        le = "ERR" if i in (2, 9, 17) else f"{i}.5"
+        rows.append(f"{t:%Y-%m-%d %H:%M},{le},{-9999 if i == 5 else i}")
+        if i == 11:
+            rows.append("")  # a blank line
+    return write(tmp_path, "TIMESTAMP,LE,T_AIR\nTS,W m-2,degC\n" + "\n".join(rows) + "\n2025-06-02 00:00,4")
+
+
+def test_small_chunks_and_blocks_match_single_piece(tmp_path, monkeypatch):
+    import pipeline.ingest as ingest
+
+    path = _messy_file(tmp_path)
+    stream = make_stream(skip_rows=(0,))
+    whole, warned_whole = read(path, stream)
+    monkeypatch.setattr(ingest, "CHUNK_ROWS", 4)
+    real_scan = ingest._scan_file
+    monkeypatch.setattr(ingest, "_scan_file", lambda p, d, n: real_scan(p, d, n, block=7))
+    pieces, warned_pieces = read(path, stream)
+    pd.testing.assert_frame_equal(whole.raw, pieces.raw)
+    assert np.array_equal(whole.rows, pieces.rows) and warned_whole == warned_pieces
+    assert whole.sha256 == pieces.sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
+    assert whole.n_bad_cells == 3 and len(whole.raw) == 23
+    assert any("3 non-numeric cells" in w and "first at row 5" in w for w in warned_whole)
+    assert any("truncated" in w for w in warned_whole)
+    assert np.isnan(whole.raw["T_AIR"].iloc[5]) and list(whole.rows[11:13]) == [14, 16]
+
+
+def test_swapped_jump_across_chunk_boundary(tmp_path, monkeypatch):
+    import pipeline.ingest as ingest
+
+    body = "11/03/2025 23:00,1\n11/03/2025 23:30,2\n03/12/2025 00:00,3\n03/12/2025 00:30,4\n"
+    monkeypatch.setattr(ingest, "CHUNK_ROWS", 2)
+    with pytest.raises(InputError, match="row 4.*swapped"):
+        read(write(tmp_path, "TIMESTAMP,LE\n" + body), make_stream(columns={"le": ("LE",)}, timestamp_format="%m/%d/%Y %H:%M"))
+
+
+def test_scan_counts_fields_outside_quotes(tmp_path):
+    """A quoted delimiter is not an extra field; an unquoted one is."""
+    from pipeline.ingest import _scan_file
+
+    path = write(tmp_path, 'A,B,C\n1,"x,y",3\n1,2,3,4\n')
+    scan = _scan_file(path, ",", 3)
+    assert scan.overfull_line == 3 and scan.overfull_fields == 4 and scan.n_lines == 3
+
+
+def test_decimal_comma_in_comma_file_is_error(tmp_path):
+    text = "TIMESTAMP,LE,T_AIR\n2025-06-01 12:00,101,5,20,5\n"
+    with pytest.raises(InputError) as info:
+        read(write(tmp_path, text), make_stream())
+    one_line_naming(str(info.value), "row 2", "5 fields", "decimal comma")

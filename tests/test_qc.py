@@ -356,7 +356,8 @@ def test_sectors_wrap_through_north():
 
 
 def test_snow_by_albedo_and_frozen_soil():
-    """A day with albedo 0.7 (> 0.45) and a frozen-soil interval set snow_or_frozen and bit 1024 on the fluxes."""
+    """A day with albedo 0.7 (> 0.45) and a frozen-soil interval set snow_or_frozen; by default bit 1024
+    goes on g only (plates in freezing soil), and on the fluxes when a site asks for it."""
     frame, flags = invented_site(days=3)
     day2 = frame.index.day == 2
     frame.loc[day2, "sw_out"] = 0.7 * frame.loc[day2, "rg"]
@@ -367,9 +368,14 @@ def test_snow_by_albedo_and_frozen_soil():
     result = run_qc(frame, flags, SITE, load_rules("standard"))
     snow = result.frame["snow_or_frozen"].to_numpy()
     assert snow.tolist() == (day2 | frozen).tolist()
+    if "g" in result.flags:
+        assert ((result.flags["g"].to_numpy() & fb.SNOW) != 0).tolist() == snow.tolist()
+    for var in ("le", "h", "fc", "rn"):
+        assert ((result.flags[var].to_numpy() & fb.SNOW) == 0).all()
+    flux_rules = rules_with({"snow": {"apply_to": ["le", "h", "fc"]}})
+    result = run_qc(frame, flags, SITE, flux_rules)
     for var in ("le", "h", "fc"):
         assert ((result.flags[var].to_numpy() & fb.SNOW) != 0).tolist() == snow.tolist()
-    assert ((result.flags["rn"].to_numpy() & fb.SNOW) == 0).all()
 
 
 def test_low_turbulence_column_and_flag():

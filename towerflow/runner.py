@@ -27,7 +27,7 @@ import pyarrow.parquet as pq
 
 from pipeline import flags as flagbits
 from pipeline.config import SiteConfig, load_site_config
-from pipeline.errors import ConfigError, TowerflowError
+from pipeline.errors import ConfigError, InputError, TowerflowError
 from pipeline.ingest import assign_stream, read_logger_file
 from pipeline.outputs import column_metadata, json_ready
 from pipeline.process import STAGES, SiteProducts
@@ -121,27 +121,115 @@ def _periods(index: pd.DatetimeIndex, changed: np.ndarray, gap: pd.Timedelta) ->
     return [[times[s].isoformat(), times[e].isoformat()] for s, e in zip(starts, ends)]
 
 
+def _flatten(table, prefix: str = "") -> dict:
+    """Nested dicts → {"a.b.c": value} (lists kept as values)."""
+    out = {}
+    for key, value in (table or {}).items():
+        name = f"{prefix}.{key}" if prefix else str(key)
+        if isinstance(value, dict):
+            out.update(_flatten(value, name))
+        else:
+            out[name] = value
+    return out
+
+
+def _dict_changes(old: dict, new: dict, *, limit: int = 12) -> list[str]:
+    """``key: old → new`` lines for the keys that differ between two nested dicts."""
+    a, b = _flatten(old), _flatten(new)
+    lines = []
+    for key in sorted(set(a) | set(b)):
+        if a.get(key, "<unset>") != b.get(key, "<unset>"):
+            lines.append(f"{key}: {a.get(key, '<unset>')!r} → {b.get(key, '<unset>')!r}")
+    if len(lines) > limit:
+        lines = lines[:limit] + [f"… and {len(lines) - limit} more"]
+    return lines
+
+
+def _history_label(entry: dict) -> str:
+    what = [k for k in entry if k not in ("start", "end", "reason")]
+    text = f"{entry.get('start', '?')} to {entry.get('end', '?')} ({', '.join(what) or 'no change'})"
+    return text + (f": {entry['reason']}" if entry.get("reason") else "")
+
+
+def _config_changes(old_text: str | None, new_text: str | None) -> list[str]:
+    """What differs between two site TOML texts: [[history]] entries, rule overrides, other keys."""
+    import tomllib
+
+    if not old_text or not new_text:
+        return ["the site configuration changed (the previous one was not kept, no detail)"]
+    try:
+        old, new = tomllib.loads(old_text), tomllib.loads(new_text)
+    except tomllib.TOMLDecodeError:
+        return ["the site configuration changed"]
+    lines = []
+    old_hist = [json.dumps(h, sort_keys=True, default=str) for h in old.pop("history", [])]
+    new_hist = [json.dumps(h, sort_keys=True, default=str) for h in new.pop("history", [])]
+    lines += ["[[history]] entry added: " + _history_label(json.loads(h)) for h in new_hist if h not in old_hist]
+    lines += ["[[history]] entry removed: " + _history_label(json.loads(h)) for h in old_hist if h not in new_hist]
+    old_override = (old.get("qc") or {}).pop("override", {})
+    new_override = (new.get("qc") or {}).pop("override", {})
+    lines += ["rule override " + c for c in _dict_changes({"qc.override": old_override},
+                                                         {"qc.override": new_override})]
+    lines += ["configuration " + c for c in _dict_changes(old, new)]
+    return lines or ["the site configuration file changed (comments or layout only)"]
+
+
 def change_log(previous: pd.DataFrame | None, current: pd.DataFrame, *, previous_meta: dict,
                current_meta: dict, new_rows: dict) -> dict:
-    """Which variables and periods changed since the previous run, and why."""
+    """Which variables and periods changed since the previous run, and why.
+
+    Parameters
+    ----------
+    previous, current : pandas.DataFrame or None
+        The previous run's ``intervals.parquet`` frame (None on a first run) and this run's.
+    previous_meta, current_meta : dict
+        The file metadata of both runs (``config_sha256``, ``rules_sha256``,
+        ``site_config_toml``, ``effective_rules``, ``provisional_from``, ``software_version``,
+        ``run_id``).
+    new_rows : dict
+        Rows the store gained in this run, per stream.
+
+    Returns
+    -------
+    dict
+        ``reasons`` (why values may have changed: new data, a configuration change with the
+        [[history]] entries and rule keys that differ, a rule-set change, a new version),
+        ``new_intervals`` and ``new_period``, ``changes`` (per column: intervals changed,
+        how many lie before the previous run's ``provisional_from``, and the periods, in
+        the site's local standard time), ``revised_before_provisional`` (intervals the
+        previous run called final that changed).
+    """
     reasons = []
     if previous is None:
         return {"first_run": True, "changes": [], "reasons": ["first run for this output folder"]}
-    if previous_meta.get("config_sha256") != current_meta.get("config_sha256"):
-        reasons.append("the site configuration changed (e.g. a new [[history]] entry)")
-    if previous_meta.get("rules_sha256") != current_meta.get("rules_sha256"):
-        reasons.append("the effective rule set changed")
+    config_changed = previous_meta.get("config_sha256") != current_meta.get("config_sha256")
+    rules_changed = previous_meta.get("rules_sha256") != current_meta.get("rules_sha256")
     if any(new_rows.values()):
         reasons.append("new data were added to the store: " +
                        ", ".join(f"{k}: {v} rows" for k, v in new_rows.items() if v))
+    if config_changed:
+        reasons += _config_changes(previous_meta.get("site_config_toml"), current_meta.get("site_config_toml"))
+    if rules_changed:
+        detail = _dict_changes(previous_meta.get("effective_rules") or {},
+                               current_meta.get("effective_rules") or {})
+        reasons.append("the effective rule set changed" + (": " + "; ".join(detail) if detail else ""))
     if previous_meta.get("software_version") != current_meta.get("software_version"):
-        reasons.append("the towerflow version changed")
+        reasons.append(f"the towerflow version changed ({previous_meta.get('software_version')} → "
+                       f"{current_meta.get('software_version')})")
     prev = previous.set_index("timestamp_start")
     cur = current.set_index("timestamp_start")
-    prev.index = pd.DatetimeIndex(prev.index)
+    tz = pd.DatetimeIndex(cur.index).tz
+    prev.index = pd.DatetimeIndex(prev.index).tz_convert(tz) if tz is not None else pd.DatetimeIndex(prev.index)
     cur.index = pd.DatetimeIndex(cur.index)
     common = cur.index.intersection(prev.index)
+    if tz is not None and common.tz is not None:
+        common = common.tz_convert(tz)
+    final_until = previous_meta.get("provisional_from")
+    final_mask = np.zeros(len(common), dtype=bool)
+    if final_until:
+        final_mask = np.asarray(common < pd.Timestamp(final_until))
     changes = []
+    revised = np.zeros(len(common), dtype=bool)
     gap = pd.Timedelta(days=1)
     for col in _CHANGE_COLUMNS:
         if col not in cur.columns:
@@ -158,17 +246,34 @@ def change_log(previous: pd.DataFrame | None, current: pd.DataFrame, *, previous
         else:
             diff = a != b
         if diff.any():
+            revised |= diff & final_mask
             changes.append({"column": col, "n_intervals": int(diff.sum()),
+                            "n_before_provisional": int((diff & final_mask).sum()),
                             "periods": _periods(common, diff, gap)})
+    n_revised = int(revised.sum())
+    if n_revised and not (config_changed or rules_changed):
+        reasons.append(f"{n_revised} intervals before the previous run's provisional_from "
+                       f"({final_until}) changed: record-wide fits and choices (fill method, fitted "
+                       "relations) use every week's data")
     added = cur.index.difference(prev.index)
     return {
         "first_run": False,
         "previous_run": previous_meta.get("run_id"),
+        "previous_provisional_from": final_until,
         "reasons": reasons or ["nothing changed in the inputs"],
         "new_intervals": int(len(added)),
         "new_period": [added[0].isoformat(), added[-1].isoformat()] if len(added) else None,
+        "revised_before_provisional": n_revised,
         "changes": changes,
     }
+
+
+def _config_text(path) -> str | None:
+    """The site TOML's text, kept in the outputs' metadata so the next change log can diff it."""
+    try:
+        return Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError):
+        return None
 
 
 def _read_previous(site_dir: Path) -> tuple[pd.DataFrame | None, dict]:
@@ -189,12 +294,17 @@ def _changes_markdown(site: str, log: dict) -> str:
     if log.get("new_period"):
         lines.append(f"- {log['new_intervals']} new intervals, {log['new_period'][0]} to {log['new_period'][1]}")
     if log.get("changes"):
-        lines += ["", "| column | intervals changed | periods |", "|---|---|---|"]
+        if log.get("previous_provisional_from"):
+            lines.append(f"- the previous run called values before {log['previous_provisional_from']} final; "
+                         f"{log.get('revised_before_provisional', 0)} of them changed")
+        lines += ["", "| column | intervals changed | of them before the previous provisional_from | periods |",
+                  "|---|---|---|---|"]
         for ch in log["changes"]:
             periods = "; ".join(f"{a} to {b}" for a, b in ch.get("periods", [])[:6])
             if len(ch.get("periods", [])) > 6:
                 periods += f"; … ({len(ch['periods'])} periods)"
-            lines.append(f"| {ch['column']} | {ch.get('n_intervals', '')} | {periods or ch.get('note', '')} |")
+            lines.append(f"| {ch['column']} | {ch.get('n_intervals', '')} | {ch.get('n_before_provisional', '')} "
+                         f"| {periods or ch.get('note', '')} |")
     elif not log.get("first_run"):
         lines += ["", "No earlier value changed."]
     return "\n".join(lines) + "\n"
@@ -223,14 +333,16 @@ def prepare_site(config_path, files, out_dir, *, supersede: bool = False,
     rules = load_rules(rules_spec or cfg.qc.get("rules", "standard"),
                        site_overrides=cfg.qc.get("override"), site_file=cfg.path,
                        relative_to=cfg.path.parent)
-    site_dir = site_output_dir(Path(out_dir), cfg.site.id)
-    site_dir.mkdir(parents=True, exist_ok=True)
+    site_dir = site_output_dir(Path(out_dir), cfg.site.id)  # created only when the run commits
     store = SiteStore(site_dir / "store")
     t0 = time.perf_counter()
     ingested = []
     warnings: list[str] = []
-    for f in files:
-        path = Path(f)
+    files = [Path(f) for f in files]
+    for path in files:  # every file first: a missing one stops the run before any work
+        if not path.is_file():
+            raise InputError("file not found" if not path.exists() else "not a file", file=path)
+    for path in files:
         stream = assign_stream(path, cfg)
         item = read_logger_file(path, stream, cfg.site)
         ingested.append(item)
@@ -262,6 +374,7 @@ def finish_site(state, pending, *, timings: dict | None = None) -> Path:
     products = stage_outputs(state, software_version=__version__)
     timings["outputs"] = time.perf_counter() - t0
     t0 = time.perf_counter()
+    site_dir.mkdir(parents=True, exist_ok=True)
     pending.commit()
     timings["store_commit"] = time.perf_counter() - t0
     t0 = time.perf_counter()
@@ -338,7 +451,9 @@ def _write_outputs(site_dir: Path, cfg: SiteConfig, products: SiteProducts, rule
         "site_name": cfg.site.name,
         "software_version": __version__,
         "config_sha256": cfg.sha256,
+        "site_config_toml": _config_text(cfg.path),
         "rules_sha256": rules_sha,
+        "provisional_from": products.summary.get("provisional_from"),
         "effective_rules": rules,
         "processed_at": processed_at,
         "run_id": run_id,
