@@ -17,6 +17,8 @@ identical (values to 1e-12, same methods). The whole stage
 cross-validation) is timed too. Run::
 
     .venv/bin/python benchmarks/bench_gapfill.py [--days 365] [--repeat 3]
+
+``run()`` returns the same numbers for a benchmark suite runner. Every value is invented.
 """
 from __future__ import annotations
 
@@ -100,7 +102,7 @@ def plain_per_gap_loop(times, y, drivers, to_fill, *, tolerances, steps, min_sam
                 sel &= np.abs(drivers[name] - drivers[name][i]) <= tolerances[name]
             if sel.sum() >= min_samples:
                 est[i] = np.mean(y[sel])
-                sd[i] = np.std(y[sel], ddof=1)
+                sd[i] = np.std(y[sel], ddof=1) if sel.sum() > 1 else np.nan  # sample sd
                 method[i] = step.method
                 break
     return est, sd, method
@@ -136,18 +138,15 @@ def per_gap_loop(y, drivers, to_fill, *, interval, tolerances, steps, min_sample
             if ok.sum() >= min_samples:
                 sel = yy[ok]
                 est[i] = sel.mean()
-                sd[i] = sel.std(ddof=1)
+                sd[i] = sel.std(ddof=1) if sel.size > 1 else np.nan
                 method[i] = step.method
                 break
     return est, sd, method
 
 
-def main():
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--days", type=int, default=365)
-    parser.add_argument("--repeat", type=int, default=3)
-    args = parser.parse_args()
-    frame, flags, site, gaps = invented_site_year(args.days)
+def run(days: int = 365, repeat: int = 3) -> dict:
+    """Time the fillers on an invented site-year; return the numbers (seconds, CPU time)."""
+    frame, flags, site, gaps = invented_site_year(days)
     y = np.where(gaps, np.nan, frame["le"].to_numpy())
     drivers = {k: frame[k].to_numpy() for k in ("rg", "ta", "vpd")}
     tol = {"rg": 50.0, "ta": 2.5, "vpd": 0.5}  # Reichstein et al. 2005
@@ -156,7 +155,7 @@ def main():
 
     def best(fn):
         times = []
-        for _ in range(args.repeat):
+        for _ in range(repeat):
             t0 = time.process_time()  # CPU time: less disturbed by other processes
             out = fn()
             times.append(time.process_time() - t0)
@@ -166,26 +165,43 @@ def main():
     t_loop, loop = best(lambda: per_gap_loop(y, drivers, gaps, **kw))
     t_plain, plain = best(lambda: plain_per_gap_loop(frame.index, y, drivers, gaps, tolerances=tol,
                                                      steps=steps, min_samples=2))
-    for other in (loop, plain):
+    for other in (loop, plain):  # identical output, or the timing means nothing
         np.testing.assert_allclose(vec[0], other[0], rtol=1e-12, atol=1e-12)
         np.testing.assert_allclose(vec[1], other[1], rtol=1e-12, atol=1e-12)
         assert np.array_equal(vec[2], other[2])
-    max_diff = max(float(np.nanmax(np.abs(vec[0] - o[0]))) for o in (loop, plain))
-    max_sd_diff = max(float(np.nanmax(np.abs(vec[1] - o[1]))) for o in (loop, plain))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", TowerflowWarning)
         t0 = time.perf_counter()
         fill_gaps(frame, flags, site, standard_rules())
         t_stage = time.perf_counter() - t0
-    print(f"site-year: {len(frame)} intervals, {int(gaps.sum())} missing ({gaps.mean():.0%}); "
-          f"CPU seconds, best of {args.repeat}")
+    return {
+        "intervals": len(frame), "missing": int(gaps.sum()), "repeat": repeat,
+        "plain_loop_s": t_plain, "tuned_loop_s": t_loop, "vectorised_s": t_vec,
+        "speedup_vs_plain_loop": t_plain / t_vec, "speedup_vs_tuned_loop": t_loop / t_vec,
+        "stage_wall_s": t_stage,
+        "max_abs_diff": max(float(np.nanmax(np.abs(vec[0] - o[0]))) for o in (loop, plain)),
+        "max_abs_sd_diff": max(float(np.nanmax(np.abs(vec[1] - o[1]))) for o in (loop, plain)),
+    }
+
+
+def main(argv=None) -> dict:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--days", type=int, default=365)
+    parser.add_argument("--repeat", type=int, default=3)
+    args = parser.parse_args(argv)
+    r = run(args.days, args.repeat)
+    print(f"site-year: {r['intervals']} intervals, {r['missing']} missing "
+          f"({r['missing'] / r['intervals']:.0%}); CPU seconds, best of {r['repeat']}")
     print("| similar-conditions filler | time (s) | vectorised speed-up |")
     print("|---|---|---|")
-    print(f"| plain per-gap loop (the test's reference) | {t_plain:.3f} | {t_plain / t_vec:.1f}x |")
-    print(f"| tuned per-gap loop (sliced windows) | {t_loop:.3f} | {t_loop / t_vec:.1f}x |")
-    print(f"| vectorised (pipeline.gapfill_similar) | {t_vec:.3f} | 1.0x |")
-    print(f"whole fill_gaps stage (drivers, Penman-Monteith, cross-validation): {t_stage:.3f} s wall")
-    print(f"identical output: methods equal, max |diff| value {max_diff:.2e} W m-2, sd {max_sd_diff:.2e} W m-2")
+    print(f"| plain per-gap loop (the test's reference) | {r['plain_loop_s']:.3f} | {r['speedup_vs_plain_loop']:.1f}x |")
+    print(f"| tuned per-gap loop (sliced windows) | {r['tuned_loop_s']:.3f} | {r['speedup_vs_tuned_loop']:.1f}x |")
+    print(f"| vectorised (pipeline.gapfill_similar) | {r['vectorised_s']:.3f} | 1.0x |")
+    print(f"whole fill_gaps stage (drivers, Penman-Monteith, cross-validation): {r['stage_wall_s']:.3f} s wall")
+    print(f"identical output: methods equal, max |diff| value {r['max_abs_diff']:.2e} W m-2, "
+          f"sd {r['max_abs_sd_diff']:.2e} W m-2")
+    return r
+
 
 if __name__ == "__main__":
     main()

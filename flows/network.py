@@ -13,13 +13,15 @@ A failing site never stops the others: its error is returned, written to
 """
 from __future__ import annotations
 
+import os
+
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 
 from towerflow.network import run_site_job
 
-__all__ = ["network_flow", "site_task", "with_dask"]
+__all__ = ["network_flow", "site_task", "with_dask", "with_threads", "weekly_network_flow"]
 
 site_task = task(run_site_job, name="site", cache_policy=NO_CACHE,
                  task_run_name="site-{job[index]}")
@@ -41,6 +43,13 @@ def network_flow(jobs: list[dict]) -> list[dict]:
     return results
 
 
+def with_threads(workers: int | None = None):
+    """The network flow on ``workers`` threads of this process (default: the CPU cores)."""
+    import os
+
+    return network_flow.with_options(task_runner=ThreadPoolTaskRunner(max_workers=workers or os.cpu_count() or 1))
+
+
 def with_dask(*, address: str | None = None, workers: int | None = None):
     """The network flow on a Dask cluster: an existing scheduler or a local cluster of ``workers``."""
     try:
@@ -50,7 +59,7 @@ def with_dask(*, address: str | None = None, workers: int | None = None):
     if address:
         runner = DaskTaskRunner(address=address)
     else:
-        runner = DaskTaskRunner(cluster_kwargs={"n_workers": workers or 2, "threads_per_worker": 1,
+        runner = DaskTaskRunner(cluster_kwargs={"n_workers": workers or os.cpu_count() or 1, "threads_per_worker": 1,
                                                 "dashboard_address": None, "processes": True})
     return network_flow.with_options(task_runner=runner)
 

@@ -34,8 +34,8 @@ Fill methods (``le_fill_method``, ``h_fill_method``)
 Quality classes (``<flux>_fill_quality``): ``measured``; for filled values ``good``,
 ``fair`` or ``poor`` (mapping in :mod:`pipeline.gapfill_similar` and
 :mod:`pipeline.gapfill_penman`; a fill from filled drivers is lowered one class, and so is
-a fill of an interval under snow or frozen conditions, since QC rejects the fluxes there and
-no accepted analogue shares that surface state); ``not_filled`` where nothing was filled.
+a fill of an interval under snow or frozen conditions, where few accepted analogues share
+that surface state); missing (null) where nothing was filled.
 
 Strategies and the site's choice
 --------------------------------
@@ -457,7 +457,7 @@ def _assemble(flux, obs, acc, est, sd, method, quality):
     q = np.where(acc, "measured", quality).astype(object)
     none = ~acc & ~np.isfinite(est)
     m[none] = "not_filled"
-    q[none] = "not_filled"
+    q[none] = None  # CONTRACT: quality is measured / good / fair / poor; an unfilled value has none
     sd_out[none] = np.nan
     return val, sd_out, m, q
 

@@ -32,7 +32,7 @@ import pandas as pd
 from scipy import stats
 
 from . import micromet, solar
-from .errors import warn
+from .errors import TowerflowError, warn
 from .gapfill_similar import SimilarityStep, diurnal_steps, fill_similar_conditions
 
 __all__ = ["fill_met_drivers", "runs", "run_length", "FILLED_DRIVER_METHODS"]
@@ -83,7 +83,11 @@ def _neighbour_arrays(neighbours, index, variable_fn):
     target = index.tz_convert("UTC")
     for site_id, nb in (neighbours or {}).items():
         nb = nb.copy()
-        nb.index = pd.DatetimeIndex(nb.index).tz_convert("UTC")
+        nb_index = pd.DatetimeIndex(nb.index)
+        if nb_index.tz is None:
+            raise TowerflowError("the neighbour site's index must be timezone-aware (interval starts)",
+                                 key=f"neighbours.{site_id}")
+        nb.index = nb_index.tz_convert("UTC")
         nb = nb[~nb.index.duplicated()].reindex(target)
         for col in list(nb.columns):
             flag = f"{col}_flag"

@@ -214,7 +214,7 @@ def _reduce_step(y, drivers, tolerances, gaps, offsets, min_samples, chunk_eleme
         enough = cnt >= min_samples
         sl = slice(start, start + g.size)
         mean[sl] = np.where(enough, mu, np.nan)
-        sd[sl] = np.where(enough, np.sqrt(np.where(cnt > 1, var, 0.0)), np.nan)
+        sd[sl] = np.where(enough, np.sqrt(np.where(cnt > 1, var, np.nan)), np.nan)
         count[sl] = cnt
     return mean, sd, count
 
@@ -305,7 +305,7 @@ def _reduce_step_bucketed(y, drivers, tolerances, gaps, half, min_samples, chunk
         enough = cnt >= min_samples
         pos = live_pos[a:b]
         mean[pos] = np.where(enough, mu, np.nan)
-        sd[pos] = np.where(enough, np.sqrt(np.where(cnt > 1, var, 0.0)), np.nan)
+        sd[pos] = np.where(enough, np.sqrt(np.where(cnt > 1, var, np.nan)), np.nan)
         count[pos] = cnt
     return mean, sd, count
 
@@ -332,7 +332,8 @@ def fill_similar_conditions(target, drivers: dict, to_fill, *, interval, toleran
     steps : list of SimilarityStep
         The sequence, e.g. :func:`similarity_steps`.
     min_samples : int
-        Fewest similar samples for a fill (at least 2, so that a spread exists).
+        Fewest similar samples for a fill; with 1, a fill from a single sample has sd NaN
+        (a spread needs 2).
     drivers_filled : dict of str to array_like of bool, optional
         Where each driver was itself filled: lowers the quality one class.
     chunk_elements : int

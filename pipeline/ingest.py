@@ -72,7 +72,7 @@ SNAP_TOLERANCE = 0.10
 #: minimum share of sub-intervals present for an aggregated mean (common practice)
 MIN_SHARE = 2.0 / 3.0
 #: rows parsed per chunk: memory stays near the output plus one chunk for files of any size
-CHUNK_ROWS = 200_000
+CHUNK_ROWS = 50_000
 #: delimiters detected in the header line, in order of preference on a tie
 DELIMITERS = (",", ";", "\t")
 #: a file-order jump larger than this, which the day/month-swapped reading removes, is a swap
@@ -391,11 +391,15 @@ def _to_float(column: pd.Series, decimal: str) -> tuple[np.ndarray, np.ndarray]:
     """(float64 values, mask of non-numeric cells) of a column as read."""
     if pd.api.types.is_numeric_dtype(column.dtype) or pd.api.types.is_bool_dtype(column.dtype):
         return column.to_numpy(dtype=np.float64, na_value=np.nan), np.zeros(len(column), bool)
-    text = column.astype("string").str.strip()
+    text = column
     if decimal != ".":
-        text = text.str.replace(decimal, ".", regex=False)
+        text = column.str.replace(decimal, ".", regex=False)
     values = pd.to_numeric(text, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
-    bad = np.isnan(values) & column.notna().to_numpy() & (text.fillna("") != "").to_numpy()
+    nan = np.isnan(values)
+    bad = np.zeros(len(column), dtype=bool)
+    if nan.any():  # cells that held text (not empty, not a declared sentinel) but no number
+        held = column[nan]
+        bad[nan] = held.notna().to_numpy() & (held.astype(str).str.strip() != "").to_numpy()
     return values, bad
 
 
@@ -639,7 +643,7 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
                 values[np.isin(values, sentinels)] = np.nan
             matrix[pos:pos + m, j] = values
         for col in pass_cols:
-            passed[col].append(chunk[col].to_numpy())
+            passed[col].append(chunk[col].to_numpy().copy())  # a copy: a view would pin the chunk
 
         stamped = np.flatnonzero(~blank)
         text = _timestamp_text(chunk.iloc[stamped], stream).reset_index(drop=True)

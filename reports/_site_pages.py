@@ -171,24 +171,32 @@ _REASON_HEADERS = {
 
 
 def _text_table(ax, header: list[str], rows: list[list[str]], *, top: float, size: float = 7.2) -> float:
-    """A light table drawn as one text per column (fast to render); returns the bottom in axes units."""
+    """A light table drawn as one text per column (fast to render); returns the bottom in axes units.
+
+    The first column is left-aligned; the others are right-aligned numbers whose headers are
+    written upwards so that a dozen narrow columns fit.
+    """
     n_cols = len(header)
-    first = 0.19
-    rest = (1.0 - first - 0.08) / max(1, n_cols - 2)
-    xs = [0.0, first + 0.08] + [first + 0.08 + rest * k for k in range(1, n_cols - 1)]
+    first_right = 0.30
+    rest = (1.0 - first_right) / max(1, n_cols - 1)
+    rights = [first_right + rest * k for k in range(1, n_cols)]
     fig = ax.figure
     height_pts = ax.get_position().height * fig.get_figheight() * 72.0
     line = size * 1.45 / height_pts  # axes units per table line
-    header_lines = max(h.count("\n") + 1 for h in header)
-    y_body = top - header_lines * line - 0.4 * line
-    for j, h in enumerate(header):
-        ax.text(xs[j] + (0 if j == 0 else rest * 0.95), top, h, fontsize=size - 0.6, fontweight="bold",
-                ha="left" if j == 0 else "right", va="top", linespacing=1.1, transform=ax.transAxes)
-        body = "\n".join(r[j] for r in rows)
-        ax.text(xs[j] + (0 if j == 0 else rest * 0.95), y_body, body, fontsize=size,
-                ha="left" if j == 0 else "right", va="top", linespacing=1.45, transform=ax.transAxes,
-                family="DejaVu Sans")
-    ax.plot([0, 1], [y_body + 0.2 * line] * 2, color="#333333", linewidth=0.6, transform=ax.transAxes)
+    header_height = 50.0 / height_pts  # room for upright headers, ~50 pt
+    y_head = top - header_height
+    ax.text(0.0, y_head + 0.2 * line, header[0], fontsize=size - 0.4, fontweight="bold", ha="left", va="bottom",
+            transform=ax.transAxes)
+    for j, h in enumerate(header[1:], start=1):
+        ax.text(rights[j - 1] - 0.25 * rest, y_head + 0.2 * line, h.replace("\n", " "), fontsize=size - 0.6,
+                fontweight="bold", rotation=90, ha="center", va="bottom", transform=ax.transAxes)
+    y_body = y_head - 0.35 * line
+    ax.text(0.0, y_body, "\n".join(r[0] for r in rows), fontsize=size, ha="left", va="top",
+            linespacing=1.45, transform=ax.transAxes)
+    for j in range(1, n_cols):
+        ax.text(rights[j - 1] - 0.05 * rest, y_body, "\n".join(r[j] for r in rows), fontsize=size, ha="right",
+                va="top", linespacing=1.45, transform=ax.transAxes)
+    ax.plot([0, 1], [y_head] * 2, color="#333333", linewidth=0.6, transform=ax.transAxes)
     bottom = y_body - len(rows) * line * 1.02
     ax.plot([0, 1], [bottom] * 2, color="#333333", linewidth=0.6, transform=ax.transAxes)
     return bottom
@@ -258,7 +266,8 @@ def page_overview(ctx: Context) -> Figure:
     if offsets:
         lines.append(f"  median offset {np.median(offsets):+.1f} min over {len(offsets)} clear days; "
                      f"steps: {len(clock.get('steps') or [])}; drift "
-                     f"{fmt(clock.get('drift_minutes_per_week'), '+.1f', 'not significant')} min/week")
+                     (f"{fmt(clock.get('drift_minutes_per_week'), '+.1f')} min/week"
+                      if not math.isnan(num(clock.get("drift_minutes_per_week"))) else "none detected"))
     else:
         lines.append("  no clear day to check the clock")
     if clock.get("suspect_weeks"):
@@ -275,7 +284,7 @@ def page_overview(ctx: Context) -> Figure:
     for p in out.problems:
         lines.append(f"  report input: {p}")
     ax_text = fig.add_axes([0.56, 0.16, 0.405, 0.76])
-    _text_block(ax_text, lines, size=7.4, width=92, max_lines=62)
+    _text_block(ax_text, lines, size=7.4, width=86, max_lines=62)
     fig.text(0.56, 0.085, "CAUTION: " + CAUTION, fontsize=8.5, fontweight="bold", va="bottom", wrap=True,
              color="#000000", bbox={"boxstyle": "round,pad=0.5", "facecolor": "#FFF4D6",
                                     "edgecolor": style.OKABE_ITO["orange"]})

@@ -116,7 +116,7 @@ def write_synthetic_site(site_dir: Path, *, site: str = "invented-meadow", days:
     daily = daily.reset_index()
     daily["date"] = daily["date"].dt.date
     daily.to_parquet(site_dir / "daily.parquet")
-    obs = le[rng.choice(n, 200, replace=False)]
+    obs = le[rng.choice(n, min(n, 200), replace=False)]
     weeks = pd.date_range(local_day[0], local_day[-1], freq="7D")
     summary = {
         "site": site,
@@ -132,8 +132,8 @@ def write_synthetic_site(site_dir: Path, *, site: str = "invented-meadow", days:
         "spikes": {"le": int(np.sum(flags["le"] & flagbits.SPIKE > 0)), "h": int(np.sum(flags["h"] & flagbits.SPIKE > 0))},
         "fill_skill": {"le": {"rmse": 20.0, "bias": 0.5, "r2": 0.85, "n": 200, "method": "similar_conditions"},
                        "h": {"rmse": 18.0, "bias": -0.3, "r2": 0.83, "n": 200, "method": "similar_conditions"}},
-        "fill_validation": {"le": {"observed": obs.tolist(), "filled": (obs + rng.normal(0, 20, 200)).tolist()},
-                            "h": {"observed": obs.tolist(), "filled": (0.6 * obs + rng.normal(0, 18, 200)).tolist()}},
+        "fill_validation": {"le": {"observed": obs.tolist(), "filled": (obs + rng.normal(0, 20, obs.size)).tolist()},
+                            "h": {"observed": obs.tolist(), "filled": (0.6 * obs + rng.normal(0, 18, obs.size)).tolist()}},
         "health": {
             "findings": [
                 {"check": "clock_offset", "week": "2025-W18", "severity": "ok", "message": "Logger clock within 15 min."},

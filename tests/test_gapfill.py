@@ -11,6 +11,8 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from pipeline import micromet, solar
 from pipeline.config import SiteInfo
@@ -124,7 +126,7 @@ def reference_similar_conditions(times, y, drivers, to_fill, steps, tolerances, 
                 sel &= np.abs(drivers[name] - drivers[name][i]) <= tolerances[name]
             if sel.sum() >= min_samples:
                 est[i] = np.mean(y[sel])
-                sd[i] = np.std(y[sel], ddof=1)
+                sd[i] = np.std(y[sel], ddof=1) if sel.sum() > 1 else np.nan  # sample sd
                 method[i] = step.method
                 break
     return est, sd, method
@@ -214,8 +216,8 @@ def test_filled_le_beats_mean_diurnal_course(filled_60d):
     ok = hidden & np.isfinite(base)
     rmse = np.sqrt(np.mean((est[ok] - truth[ok]) ** 2))
     rmse_base = np.sqrt(np.mean((base[ok] - truth[ok]) ** 2))
-    assert rmse <= 0.85 * rmse_base
-    assert abs(np.mean(est[hidden] - truth[hidden])) <= 5.0
+    assert rmse <= 0.85 * rmse_base  # issue 5 acceptance ratio
+    assert abs(np.mean(est[hidden] - truth[hidden])) <= 5.0  # issue 5: |bias| ≤ 5 W m-2
 
 
 def test_h_filled_close_to_truth(filled_60d):
@@ -225,8 +227,8 @@ def test_h_filled_close_to_truth(filled_60d):
     est = res.columns["h_filled"].to_numpy()
     base = mean_diurnal_course_baseline(frame.index, np.where(hidden, np.nan, truth), hidden)
     ok = hidden & np.isfinite(base)
-    assert np.sqrt(np.mean((est[ok] - truth[ok]) ** 2)) <= 0.85 * np.sqrt(np.mean((base[ok] - truth[ok]) ** 2))
-    assert abs(np.mean(est[hidden] - truth[hidden])) <= 5.0
+    assert np.sqrt(np.mean((est[ok] - truth[ok]) ** 2)) <= 0.85 * np.sqrt(np.mean((base[ok] - truth[ok]) ** 2))  # issue 5
+    assert abs(np.mean(est[hidden] - truth[hidden])) <= 5.0  # issue 5 bound, applied to H too
 
 
 def test_columns_quality_and_sd(filled_60d):
@@ -264,7 +266,7 @@ def test_summary_skill_and_choice(filled_60d):
         assert fs["method"] == min(cands, key=lambda k: cands[k]["rmse"])
         assert fs["rmse"] == cands[fs["method"]]["rmse"]
     assert s["fill_skill"]["by_method"]["le"]
-    assert 0.25 < s["gaps"]["le"] < 0.4
+    assert 0.25 < s["gaps"]["le"] < 0.4  # by construction: 30 % of LE hidden
     assert s["long_gaps"]["le"]["n_gaps"] == 0
     assert "ta" in s["driver_fill"] and "rg" in s["driver_fill"]
 
@@ -310,7 +312,7 @@ def test_gap_longer_than_widest_window_and_beyond_max_fill_length():
     assert lg["n_gaps"] == 1 and lg["n_intervals"] == 35 * per_day
     daily = res.daily
     assert daily.index.name == "date"
-    assert (daily["le_long_gap_fraction"] == 1.0).sum() == 35
+    assert (daily["le_long_gap_fraction"] == 1.0).sum() == 35  # by construction: 35 whole days
     assert (daily["le_long_gap_fraction"] > 0).sum() == 35
     assert (daily["h_long_gap_fraction"] == 0).all()
 
@@ -347,7 +349,7 @@ def test_site_without_rg():
     # night fills come from night: the filled LE at night stays near the night truth
     night = hidden & ~frame["is_day"].to_numpy()
     err = c["le_filled"][night] - frame["le"][night]
-    assert abs(err.mean()) < 5.0
+    assert abs(err.mean()) < 5.0  # issue 5 bias bound
 
 
 def test_sixty_minute_site():
@@ -360,7 +362,7 @@ def test_sixty_minute_site():
     assert np.isfinite(est).all()
     base = mean_diurnal_course_baseline(frame.index, np.where(hidden, np.nan, truth), hidden)
     ok = hidden & np.isfinite(base)
-    assert np.sqrt(np.mean((est[ok] - truth[ok]) ** 2)) <= 0.85 * np.sqrt(np.mean((base[ok] - truth[ok]) ** 2))
+    assert np.sqrt(np.mean((est[ok] - truth[ok]) ** 2)) <= 0.85 * np.sqrt(np.mean((base[ok] - truth[ok]) ** 2))  # issue 5
 
 
 def test_sonic_outage_uses_wind_relation():
@@ -380,7 +382,7 @@ def test_sonic_outage_uses_wind_relation():
     assert res.summary["fill_choice"]["le"]["chosen"] == "penman_monteith_conductance"
     day = out & frame["is_day"].to_numpy()
     pm = out & (c["le_fill_method"] == "penman_monteith_conductance").to_numpy()
-    assert pm.sum() >= 0.9 * day.sum()
+    assert pm.sum() >= 0.9 * day.sum()  # regression: a few low-sun intervals fall back
     assert (c["le_fill_quality"][pm] == "fair").all()  # good, lowered: ga from the wind relation
     truth = frame["le"].to_numpy()
     assert np.sqrt(np.mean((c["le_filled"].to_numpy()[out] - truth[out]) ** 2)) < 40.0  # regression
@@ -444,7 +446,7 @@ def test_neighbour_site_fills_long_driver_gap():
     err = c["ta_filled"].to_numpy()[gap] - frame["ta"].to_numpy()[gap]
     assert np.sqrt(np.mean(err ** 2)) < 0.6  # regression noise 0.3/0.9 K
     rep = res.summary["driver_fill"]["ta"]["neighbours"]["invented-ridge"]
-    assert rep["n_filled"] == 5 * 48 and abs(rep["slope"] - 1 / 0.9) < 0.05
+    assert rep["n_filled"] == 5 * 48 and abs(rep["slope"] - 1 / 0.9) < 0.05  # by construction: ta_nb = 0.9 ta - 1.5
     assert len(rep["periods"]) == 1
 
 
@@ -541,11 +543,7 @@ def test_without_rn_look_up_only():
     assert np.isfinite(res.columns["le_filled"]).all()
 
 
-from hypothesis import given, settings  # noqa: E402
-from hypothesis import strategies as st  # noqa: E402
-
-
-@settings(max_examples=25, deadline=None)
+@settings(max_examples=12, deadline=None)
 @given(seed=st.integers(0, 10_000), fraction=st.floats(0.05, 0.8),
        tol_rg=st.sampled_from([10.0, 50.0, 200.0]), tol_ta=st.sampled_from([0.5, 2.5]),
        interval_minutes=st.sampled_from([30, 60]), min_samples=st.integers(1, 4))
@@ -553,7 +551,7 @@ def test_vectorised_equals_loop_property(seed, fraction, tol_rg, tol_ta, interva
     """Random small records, gaps and tolerances: vectorised filler == per-gap loop (to 1e-12)."""
     rng = np.random.default_rng(seed)
     per_day = 1440 // interval_minutes
-    n = 12 * per_day
+    n = 8 * per_day
     idx = pd.date_range("2025-07-01", periods=n, freq=f"{interval_minutes}min", tz="+01:00")
     drivers = {"rg": np.round(rng.uniform(0, 800, n), 0),  # rounded: ties at the tolerance edge
                "ta": np.round(rng.normal(15, 5, n), 1),
@@ -571,3 +569,12 @@ def test_vectorised_equals_loop_property(seed, fraction, tol_rg, tol_ta, interva
     np.testing.assert_array_equal(method, ref_method)
     np.testing.assert_allclose(est, ref_est, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(sd, ref_sd, rtol=1e-12, atol=1e-12, equal_nan=True)
+
+
+def test_neighbour_with_naive_index_is_a_clear_error():
+    """A neighbour frame without a time zone: TowerflowError naming the neighbour."""
+    from pipeline.errors import TowerflowError
+    frame, flags, site = simulate(days=10, seed=20)
+    nb = pd.DataFrame({"ta": frame["ta"].to_numpy()}, index=frame.index.tz_localize(None))
+    with pytest.raises(TowerflowError, match="neighbours.invented-hill"):
+        quiet_fill(frame, flags, site, standard_rules(), neighbours={"invented-hill": nb})

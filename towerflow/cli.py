@@ -42,24 +42,36 @@ def _error(message: str) -> int:
 class _Progress:
     """A rich progress bar over sites × stages (a no-op when stderr is not a terminal)."""
 
-    def __init__(self, total: int, enabled: bool):
+    def __init__(self, total: int, enabled: bool, *, stages_per_site: int = 1):
         self.enabled = enabled and sys.stderr.isatty()
         self.total = total
+        self.stages_per_site = stages_per_site
+        self._done: dict = {}
         self._bar = None
 
     def __enter__(self):
         if self.enabled:
-            from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
-            self._bar = Progress(TextColumn("{task.description}"), BarColumn(), TimeElapsedColumn(),
-                                 console=_console(), transient=True)
+            self._bar = Progress(TextColumn("{task.description:<40}"), BarColumn(), MofNCompleteColumn(),
+                                 TimeElapsedColumn(), console=_console(), transient=True)
             self._bar.__enter__()
             self._task = self._bar.add_task("starting", total=self.total)
         return self
 
-    def stage(self, site: str, name: str) -> None:
+    def stage(self, site, name: str) -> None:
+        """A site's stage starts: the previous one is done."""
         if self._bar is not None:
-            self._bar.update(self._task, advance=1, description=f"{site}: {name}")
+            seen = self._done.get(site, 0)
+            self._done[site] = seen + 1
+            self._bar.update(self._task, advance=1 if seen else 0, description=f"{site}: {name}")
+
+    def site_done(self, site, text: str = "") -> None:
+        """A site finished (or failed): count its remaining stages as done."""
+        if self._bar is not None:
+            left = self.stages_per_site - self._done.get(site, 0) + (1 if self._done.get(site) else 0)
+            self._done[site] = self.stages_per_site + 1
+            self._bar.update(self._task, advance=max(left, 0), description=text)
 
     def advance(self, n: int = 1, text: str = "") -> None:
         if self._bar is not None:
@@ -108,7 +120,7 @@ def cmd_run(args) -> int:
     from .runner import run_site, stage_names
 
     stages = stage_names(not args.no_report)
-    with _Progress(len(stages), enabled=not args.verbose) as bar:
+    with _Progress(len(stages), enabled=not args.verbose, stages_per_site=len(stages)) as bar:
         outcome = run_site(args.config, files, args.out, supersede=args.supersede, rules_spec=args.rules,
                            report=not args.no_report,
                            on_stage=lambda name: bar.stage(Path(args.config).stem, name))
@@ -120,24 +132,38 @@ def _run_network(network_path: Path, out_dir: Path, args) -> int:
     from pipeline.config import load_network_config
 
     from .network import finish_network, run_network_local, site_jobs
+    from .runner import stage_names
 
     network = load_network_config(network_path)
-    out_dir.mkdir(parents=True, exist_ok=True)
     jobs = site_jobs(network, out_dir, report=not args.no_report)
+    if args.workers is not None and args.workers < 1:
+        return _error(f"--workers must be at least 1 (got {args.workers})")
+    out_dir.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
-    use_dask = bool(args.dask_address) or bool(args.workers and args.dask)
+    use_dask = bool(args.dask_address) or args.dask
     use_prefect = use_dask or bool(os.environ.get("PREFECT_API_URL")) or args.prefect
+    names = {j["index"]: Path(j["config"]).stem for j in jobs}
     if use_prefect:
         _quiet_prefect(args.verbose)
-        from flows.network import network_flow, with_dask
+        from flows.network import network_flow, with_dask, with_threads
 
-        flow_fn = with_dask(address=args.dask_address, workers=args.workers) if use_dask else network_flow
-        results = flow_fn(jobs)
-    else:
+        if use_dask:
+            flow_fn = with_dask(address=args.dask_address, workers=args.workers)
+            where = f"the Dask scheduler {args.dask_address}" if args.dask_address else "a local Dask cluster"
+        else:
+            flow_fn = with_threads(args.workers)
+            where = "Prefect threads"
         with _Progress(len(jobs), enabled=not args.verbose) as bar:
+            bar.advance(0, f"{len(jobs)} sites on {where}")
+            results = flow_fn(jobs)
+            bar.advance(len(jobs), "done")
+    else:
+        stages = stage_names(not args.no_report)
+        with _Progress(len(jobs) * len(stages), enabled=not args.verbose, stages_per_site=len(stages)) as bar:
             results = run_network_local(
                 jobs, workers=args.workers,
-                on_done=lambda r: bar.advance(1, f"{r['site']}: {r['status']}"))
+                on_stage=(lambda i, name: bar.stage(names[i], name)) if bar.enabled else None,
+                on_done=lambda r: bar.site_done(names[r["index"]], f"{r['site']}: {r['status']}"))
     finish_network(network, out_dir, results, report=not args.no_report)
     elapsed = time.perf_counter() - t0
     failed = [r for r in results if r["status"] != "ok"]
@@ -145,7 +171,7 @@ def _run_network(network_path: Path, out_dir: Path, args) -> int:
         if r["status"] == "ok":
             print(f"{r['site']}: ok")
         else:
-            print(f"{r['site']}: FAILED: {r['error']}", file=sys.stderr)
+            print(f"towerflow: error: site {r['site']}: {r['error']}", file=sys.stderr)
     print(f"{len(results) - len(failed)} of {len(results)} sites ok in {elapsed:.1f} s; "
           f"network summary in {out_dir / 'network_summary.csv'}")
     return EXIT_ERROR if failed else EXIT_OK
@@ -204,12 +230,16 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--no-report", action="store_true", help="write the data outputs only, no PDF")
 
     def network_opts(p):
-        p.add_argument("--workers", type=int, default=None,
-                       help="parallel site workers (default: the local cores); with --dask a local Dask cluster")
-        p.add_argument("--dask", action="store_true", help="run the sites on a local Dask cluster of --workers")
-        p.add_argument("--dask-address", default=None, help="run the sites on an existing Dask scheduler")
+        p.add_argument("--workers", type=int, default=None, metavar="N",
+                       help="sites run at once (default: the local cores); with --dask, the local cluster's workers")
+        p.add_argument("--dask", action="store_true",
+                       help="run the sites on a local Dask cluster (through Prefect) of --workers processes")
+        p.add_argument("--dask-address", default=None, metavar="ADDR",
+                       help="run the sites on an existing Dask scheduler, e.g. tcp://10.0.0.5:8786 "
+                            "(the scheduler and every worker need towerflow installed)")
         p.add_argument("--prefect", action="store_true",
-                       help="orchestrate with Prefect even without a configured server")
+                       help="orchestrate with Prefect even without a configured server "
+                            "(PREFECT_API_URL); costs 10-20 s of start-up")
 
     p = sub.add_parser("demo", help="make the invented demo network and run the whole job on it")
     p.add_argument("--out", default="towerflow-demo", help="output folder (default: towerflow-demo)")
@@ -261,8 +291,17 @@ def main(argv: list[str] | None = None) -> int:
         return _error(str(exc))
     except FileNotFoundError as exc:
         return _error(f"{exc.filename}: file not found")
+    except OSError as exc:
+        where = f"{exc.filename}: " if exc.filename else ""
+        return _error(f"{where}{exc.strerror or exc}")
     except KeyboardInterrupt:
         return _error("interrupted; the store and earlier outputs are unchanged")
+    except Exception as exc:  # a bug, not bad input: one line, the traceback with --verbose
+        if args.verbose:
+            raise
+        from .network import one_line
+
+        return _error(f"unexpected {one_line(exc)} (run with --verbose for the traceback)")
 
 
 if __name__ == "__main__":

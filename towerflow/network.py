@@ -46,10 +46,27 @@ def site_jobs(network: NetworkConfig, out_dir: Path, *, report: bool = True) -> 
     return jobs
 
 
-def run_site_job(job: dict) -> dict:
-    """Run one site; never raises: a failure is returned as ``status = "failed"``."""
+_progress_queue = None  # set in pool workers when the parent shows a progress bar
+
+
+def _init_worker(queue) -> None:
+    """Pool-worker initializer: where to send (site, stage) progress messages."""
+    global _progress_queue
+    _progress_queue = queue
+
+
+def run_site_job(job: dict, on_stage=None) -> dict:
+    """Run one site; never raises: a failure is returned as ``status = "failed"``.
+
+    ``on_stage`` (optional) is called with ``(index, stage name)`` as each stage starts; in a
+    pool worker started by :func:`run_network_local` with progress on, the messages go to
+    the parent's progress bar instead.
+    """
     from .runner import run_site
 
+    if on_stage is None and _progress_queue is not None:
+        on_stage = lambda index, name: _progress_queue.put((index, name))  # noqa: E731
+    index = job.get("index", 0)
     site_id = Path(job["config"]).stem
     try:
         try:
@@ -63,33 +80,89 @@ def run_site_job(job: dict) -> dict:
             rules_path = str(candidate) if candidate.exists() else rules
         outcome = run_site(job["config"], job["files"], job["out_dir"],
                            rules_spec=rules_path or rules, report=job.get("report", True),
-                           supersede=job.get("supersede", False))
-        return {"index": job.get("index", 0), "site": outcome.site, "status": "ok", "error": "",
+                           supersede=job.get("supersede", False),
+                           on_stage=(lambda name: on_stage(index, name)) if on_stage else None)
+        return {"index": index, "site": outcome.site, "status": "ok", "error": "",
                 "timings": outcome.timings}
     except Exception as exc:  # isolation: any failure of one site is reported, never raised
-        return {"index": job.get("index", 0), "site": site_id, "status": "failed",
+        return {"index": index, "site": site_id, "status": "failed",
                 "error": one_line(exc), "timings": {}}
 
 
-def run_network_local(jobs: list[dict], *, workers: int | None = None, on_done=None) -> list[dict]:
-    """Run the jobs in a local process pool (``workers`` processes; 1 = in this process)."""
+def run_network_local(jobs: list[dict], *, workers: int | None = None, on_done=None,
+                      on_stage=None) -> list[dict]:
+    """Run the jobs in a local process pool (``workers`` processes; 1 = in this process).
+
+    Parameters
+    ----------
+    jobs : list of dict
+        From :func:`site_jobs`.
+    workers : int, optional
+        Processes; default the smaller of the number of sites and of CPU cores.
+    on_done : callable, optional
+        Called in this process with each site's result dict as it finishes.
+    on_stage : callable, optional
+        Called in this process with ``(job index, stage name)`` as a site's stage starts.
+
+    Returns
+    -------
+    list of dict
+        One result per job, in job order.
+    """
     workers = workers or min(len(jobs), os.cpu_count() or 1)
     results: list[dict] = []
     if workers <= 1 or len(jobs) <= 1:
         for job in jobs:
-            res = run_site_job(job)
+            res = run_site_job(job, on_stage=on_stage)
             results.append(res)
             if on_done:
                 on_done(res)
         return results
-    with ProcessPoolExecutor(max_workers=workers) as pool:
-        futures = {pool.submit(run_site_job, job): job for job in jobs}
-        for fut in as_completed(futures):
-            res = fut.result()
-            results.append(res)
-            if on_done:
-                on_done(res)
+    queue = listener = None
+    if on_stage is not None:
+        import multiprocessing
+        import threading
+
+        queue = multiprocessing.get_context().Queue()
+
+        def listen():
+            while (msg := queue.get()) is not None:
+                on_stage(*msg)
+
+        listener = threading.Thread(target=listen, daemon=True)
+        listener.start()
+    try:
+        with ProcessPoolExecutor(max_workers=min(workers, len(jobs)), initializer=_init_worker,
+                                 initargs=(queue,)) as pool:
+            # the longest jobs first, so that no long site is left alone at the end
+            order = sorted(jobs, key=_job_size, reverse=True)
+            futures = {pool.submit(run_site_job, job): job for job in order}
+            for fut in as_completed(futures):
+                try:
+                    res = fut.result()
+                except Exception as exc:  # a worker died (killed, out of memory)
+                    job = futures[fut]
+                    res = {"index": job["index"], "site": Path(job["config"]).stem, "status": "failed",
+                           "error": one_line(exc), "timings": {}}
+                results.append(res)
+                if on_done:
+                    on_done(res)
+    finally:
+        if queue is not None:
+            queue.put(None)
+            listener.join(timeout=5)
     return sorted(results, key=lambda r: r["index"])
+
+
+def _job_size(job: dict) -> int:
+    """Bytes of input of a site job (its files), a proxy of its run time."""
+    size = 0
+    for f in job["files"]:
+        try:
+            size += os.path.getsize(f)
+        except OSError:
+            pass
+    return size
 
 
 def _site_row(out_dir: Path, result: dict) -> dict:

@@ -16,6 +16,7 @@ import datetime as _dt
 import hashlib
 import json
 import os
+import shutil
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -34,7 +35,7 @@ from pipeline.process import STAGES, SiteProducts
 from pipeline.rules import load_rules
 
 from . import __version__
-from .atomic import atomic_write_bytes, atomic_write_text
+from .atomic import StagedFolder, atomic_write_bytes, atomic_write_text
 from .store import SiteStore
 
 __all__ = ["run_site", "SiteOutcome", "site_output_dir", "write_parquet", "rules_to_toml"]
@@ -375,12 +376,31 @@ def finish_site(state, pending, *, timings: dict | None = None) -> Path:
     timings["outputs"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     site_dir.mkdir(parents=True, exist_ok=True)
-    pending.commit()
-    timings["store_commit"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    _write_outputs(site_dir, state.cfg, products, state.rules, products.warnings, pending.report)
-    timings["write"] = time.perf_counter() - t0
+    # Every output is written completely into a staging folder first; then, under the store's
+    # lock, the store change is committed and the staged files renamed into place. A failure
+    # before the renames (a full disk, a broken output, the lock held, another run committed
+    # first) leaves the store and the earlier outputs exactly as they were; holding the lock
+    # across commit and renames keeps a slower concurrent run from renaming older outputs
+    # over newer ones.
+    store = getattr(pending, "store", None) or SiteStore(pending.store_root)
+    with store.lock():
+        _remove_stale_staging(site_dir)
+        with StagedFolder(site_dir) as stage:
+            _write_outputs(site_dir, state.cfg, products, state.rules, products.warnings, pending.report,
+                           dest=stage.path)
+            timings["write"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            pending.commit()
+        timings["store_commit"] = time.perf_counter() - t0
     return site_dir
+
+
+def _remove_stale_staging(site_dir: Path) -> None:
+    """Staging folders left by a killed run (call only under the store's lock: outputs are
+    staged only while it is held, so any staging folder found then is stale)."""
+    for entry in site_dir.glob(".staging-*"):
+        if entry.is_dir():
+            shutil.rmtree(entry, ignore_errors=True)
 
 
 def run_site(config_path: str | os.PathLike, files, out_dir: str | os.PathLike, *,
@@ -439,7 +459,12 @@ def run_site(config_path: str | os.PathLike, files, out_dir: str | os.PathLike, 
 
 
 def _write_outputs(site_dir: Path, cfg: SiteConfig, products: SiteProducts, rules: dict,
-                   warnings: list[str], store_report: dict) -> None:
+                   warnings: list[str], store_report: dict, *, dest=None) -> None:
+    """Write the outputs; ``dest(name)`` gives each file's path (default ``site_dir / name``).
+
+    The change log compares with the previous ``site_dir / intervals.parquet``.
+    """
+    dest = dest or (lambda name: site_dir / name)
     rules_toml = rules_to_toml(rules, header=(
         f"Effective rule set of the last run for site {cfg.site.id}.\n"
         "Pass this file as the site's [qc] rules to repeat the run exactly."))
@@ -468,19 +493,19 @@ def _write_outputs(site_dir: Path, cfg: SiteConfig, products: SiteProducts, rule
     log = change_log(previous, products.intervals, previous_meta=previous_meta,
                      current_meta=file_meta, new_rows=new_rows)
 
-    write_parquet(site_dir / "intervals.parquet", products.intervals, file_metadata=file_meta)
-    write_parquet(site_dir / "daily.parquet", products.daily,
+    write_parquet(dest("intervals.parquet"), products.intervals, file_metadata=file_meta)
+    write_parquet(dest("daily.parquet"), products.daily,
                   file_metadata={k: v for k, v in file_meta.items() if k != "effective_rules"})
-    atomic_write_text(site_dir / "effective_rules.toml", rules_toml)
-    atomic_write_text(site_dir / "changes.json", json.dumps(json_ready(log), indent=1))
-    atomic_write_text(site_dir / "changes.md", _changes_markdown(cfg.site.id, log))
+    atomic_write_text(dest("effective_rules.toml"), rules_toml)
+    atomic_write_text(dest("changes.json"), json.dumps(json_ready(log), indent=1))
+    atomic_write_text(dest("changes.md"), _changes_markdown(cfg.site.id, log))
     summary = dict(products.summary)
     summary["warnings"] = list(dict.fromkeys(warnings))
     summary["run_id"] = run_id
     summary["processed_at"] = processed_at
     summary["rules_sha256"] = rules_sha
     summary["store"] = store_report
-    atomic_write_text(site_dir / "summary.json", json.dumps(json_ready(summary), indent=1))
+    atomic_write_text(dest("summary.json"), json.dumps(json_ready(summary), indent=1))
 
 
 def stage_names(report: bool = True) -> tuple[str, ...]:

@@ -785,6 +785,11 @@ class PendingChange:
         self.committed = False
 
     @property
+    def store(self) -> "SiteStore":
+        """The store the change belongs to (its ``lock()`` is re-entrant with :meth:`commit`)."""
+        return self._store
+
+    @property
     def changed(self) -> bool:
         """True if committing writes anything (some file was not in the store yet)."""
         return len(self._new["files"]) != len(self._old["files"])

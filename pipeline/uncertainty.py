@@ -1,0 +1,857 @@
+"""Uncertainty of LE and H and of the ET and energy totals built from them.
+
+Entry point: :func:`assess_uncertainty` (after the closure and filling stages). Three parts:
+
+1. **Random measurement error** of accepted LE and H by the paired-observation (24-h
+   differencing) approach of Hollinger and Richardson (2005) and Richardson et al. (2006):
+   two accepted values of the same flux one day apart under similar conditions differ
+   (almost) only by their random errors, so the spread of the differences measures the
+   error. The error's dependence on the flux magnitude is fitted as sd = a + b·|flux|
+   (their finding: the error grows with the flux). Gives ``<flux>_random_sd``.
+2. **Filling error** of every filled value from the filling stage's spread (``_fill_sd``),
+   its cross-validated skill per method (``fill_skill.by_method``) and, for fills of reduced
+   quality, the flux's own spread at that time of day. Gives ``<flux>_fill_error_sd``
+   and ``<flux>_total_sd`` (the error sd of every value of ``<flux>_filled``).
+3. **Propagation to totals** by Monte Carlo (seeded): daily, monthly, calendar-year and
+   whole-record ET [mm] and LE and H energy [MJ m-2] with sd and a central interval, beside
+   the closure bracket (ET from LE closed by the Bowen-ratio correction of the closure
+   stage; Wilson et al. 2002: the unclosed balance moves ET by far more than the random
+   band).
+
+Pairing rule (:func:`pair_mask`)
+--------------------------------
+Interval i is paired with i + 24 h when
+
+- both values are accepted (flag 0: any rejected value, including history exclusions,
+  bit 64, forms no pair);
+- global radiation differs by at most ``tolerance_rg`` (35 W m-2: the photon-flux
+  tolerance of 75 µmol m-2 s-1 of Hollinger and Richardson 2005 [from memory] converted
+  with about 2.1 µmol J-1 of global radiation [from memory: PAR ≈ 0.47 Rg, 4.57 µmol J-1]);
+  air temperature by at most ``tolerance_ta`` (3 degC) and wind speed by at most
+  ``tolerance_wind`` (1 m s-1) (Hollinger and Richardson 2005, Richardson et al. 2006
+  [from memory]); vapour pressure deficit by at most ``tolerance_vpd`` (0.5 kPa,
+  the similar-conditions tolerance of Reichstein et al. 2005; our addition for LE and H,
+  whose true value depends on VPD more than a CO2 flux does). A tolerance of a driver
+  the site lacks is dropped (a warning says so); a missing driver value forms no pair;
+- no rain (precip above ``[wet] rain_above``, or precip missing) and no irrigation in
+  any interval from i − ``rain_lead`` to i + 24 h: a wetted surface changes the true flux,
+  and a canopy stays wet for hours after the rain (``rain_lead``, common practice);
+- no site-history exclusion (bit 64 on any variable) between i and i + 24 h, and the same
+  canopy height, measurement height and analyser at both ends (a cut or a move between
+  the two changes the true flux).
+
+Estimator of the error from the pair differences
+------------------------------------------------
+With δ = x1 − x2 = ε1 − ε2 and ε1, ε2 independent Laplace (double-exponential) errors of
+scale β (sd σ = √2·β; Hollinger and Richardson 2005 found the errors Laplace-distributed),
+the density of δ is (1/4β)(1 + |δ|/β)·exp(−|δ|/β), so E|δ| = 1.5·β = (3/(2√2))·σ
+(derived here). Hence σ = (2√2/3)·mean|δ| ≈ 0.943·mean|δ|. The shortcut
+β ≈ mean|δ|/√2 (σ ≈ mean|δ|) treats δ/√2 as Laplace and overstates σ by 6 %; the
+Gaussian relation σ = sd(δ)/√2 weighs outliers (surviving spikes) far more. Because
+E|δ| is linear in σ, the model sd = a + b·|m| (m = (x1 + x2)/2) is fitted directly to
+the pairs: |δ_i| = (3/(2√2))·(a + b·|m_i|) + noise, by non-negative weighted least
+squares with weights 1/(a + b|m_i|)² (two reweighting passes). With ``fit_by_sign`` true,
+positive and negative fluxes get their own (a, b) when each side has ``min_pairs_by_sign``
+pairs; both are always reported. Fewer than ``min_pairs`` pairs: no model (warning).
+
+Error of the filled values
+--------------------------
+sd_fill = max(``_fill_sd``, cross-validated RMSE of the filling method). For fills of
+reduced quality (``fair`` or ``poor``, or made from filled drivers) the flux's spread at the
+same time of day (±1 interval of clock time, ±``time_of_day_window`` days, accepted values)
+is a third candidate: such a fill knows little more than the mean diurnal course, whose
+error is that spread (Falge et al. 2001's fallback). The cross-validation hides measured
+values, so its RMSE contains the random error of the hidden values too: the filling error
+is conservative by that much. The maximum (not a sum) is taken because each candidate
+estimates the same error.
+
+Monte Carlo assumptions
+-----------------------
+- measured values: independent Laplace errors, sd from the fitted model at |value|;
+- filled values: Gaussian errors with sd_fill, correlated within each contiguous run of
+  filled values (a gap) as AR(1) with the correlation time ``fill_error_correlation_time``
+  (φ = exp(−Δt/τ)); independent between gaps and independent of the measured values.
+  τ = ∞ makes a gap's errors fully correlated (one draw per gap);
+- LE and H errors are independent of each other;
+- values not filled (gaps beyond the maximum fill length) contribute nothing: a period with
+  such gaps has ``complete`` false and its total understates ET;
+- the closure is not part of the band: it is a systematic error, reported as a bracket.
+Totals are the estimates; the interval is estimate + the 2.5 and 97.5 % quantiles of the
+simulated error sums (``interval_level``).
+
+References
+----------
+Hollinger, D. Y. and Richardson, A. D. (2005). Uncertainty in eddy covariance measurements
+    and its application to physiological models. Tree Physiology 25, 873–885.
+Richardson, A. D. et al. (2006). A multi-site analysis of random error in tower-based
+    measurements of carbon and energy fluxes. Agric. For. Meteorol. 136, 1–18.
+Wilson, K. et al. (2002). Energy balance closure at FLUXNET sites. Agric. For. Meteorol.
+    113, 223–243.
+Reichstein, M. et al. (2005). Global Change Biology 11, 1424–1439.
+Falge, E. et al. (2001). Agric. For. Meteorol. 107, 43–69.
+Twine, T. E. et al. (2000). Agric. For. Meteorol. 103, 279–300.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+from scipy.optimize import nnls
+from scipy.signal import lfilter
+
+from . import flags as flagbits
+from . import micromet
+from .errors import RuleError, warn
+from .rules import duration, standard_rules
+from .stage import StageResult
+
+__all__ = [
+    "LAPLACE_MEAN_ABS_DIFFERENCE",
+    "LAPLACE_MEDIAN_ABS_DIFFERENCE",
+    "uncertainty_rules",
+    "pair_mask",
+    "fit_random_error",
+    "random_error_sd",
+    "time_of_day_spread",
+    "fill_error_sd",
+    "gap_labels",
+    "simulate_errors",
+    "assess_uncertainty",
+]
+
+#: E|ε1 − ε2| / σ for independent Laplace errors of sd σ: 3/(2√2) (derived in the module notes)
+LAPLACE_MEAN_ABS_DIFFERENCE = 3.0 / (2.0 * math.sqrt(2.0))
+
+_FLUXES = ("le", "h")
+_REDUCED_QUALITY = ("fair", "poor")
+_FILLED_DRIVER_METHODS = ("interpolation", "neighbour_site_regression", "mean_diurnal_course",
+                          "mean_clearness")
+
+
+def uncertainty_rules(rules: dict | None) -> dict:
+    """The ``[uncertainty]`` table of ``rules`` over the standard's (keys absent in ``rules``)."""
+    out = dict(standard_rules().get("uncertainty", {}))
+    out.update((rules or {}).get("uncertainty", {}) or {})
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# pairing and the random-error model
+# ---------------------------------------------------------------------------------------
+
+
+def _window_any(mask: np.ndarray, lag: int) -> np.ndarray:
+    """For each i < n − lag: any ``mask`` in [i, i + lag] (cumulative sums, vectorised)."""
+    c = np.concatenate(([0], np.cumsum(np.asarray(mask, dtype=np.int64))))
+    n = mask.size
+    i = np.arange(max(n - lag, 0))
+    return (c[i + lag + 1] - c[i]) > 0
+
+
+def pair_mask(x, *, lag: int, drivers: dict | None = None, tolerances: dict | None = None,
+              blocked=None, same=None) -> np.ndarray:
+    """Which intervals i form a valid pair (i, i + lag) for the paired-observation method.
+
+    Parameters
+    ----------
+    x : array_like
+        Accepted flux values (NaN where not accepted) [W m-2].
+    lag : int
+        Steps between the two members (one day of intervals).
+    drivers : dict of str to array_like, optional
+        Driver values (NaN where not accepted) on the same grid.
+    tolerances : dict of str to float, optional
+        Largest |difference| of each driver between the two members (same units).
+    blocked : array_like of bool, optional
+        True where an interval stops every pair that spans it (rain, irrigation, history
+        exclusions); the window is [i, i + lag] inclusive.
+    same : dict of str to array_like, optional
+        Site parameters that must be equal at both members (canopy height, ...).
+
+    Returns
+    -------
+    numpy.ndarray of bool
+        Length ``len(x)``; True at i where the pair (i, i + lag) is formed (False in the
+        last ``lag`` positions).
+
+    References
+    ----------
+    Hollinger and Richardson (2005); Richardson et al. (2006) (tolerances: module notes).
+    """
+    x = np.asarray(x, dtype=float)
+    n = x.size
+    out = np.zeros(n, dtype=bool)
+    if lag <= 0 or n <= lag:
+        return out
+    ok = np.isfinite(x[:-lag]) & np.isfinite(x[lag:])
+    for name, tol in (tolerances or {}).items():
+        if drivers is None or name not in drivers:
+            continue
+        d = np.asarray(drivers[name], dtype=float)
+        with np.errstate(invalid="ignore"):
+            ok &= np.abs(d[lag:] - d[:-lag]) <= float(tol)  # NaN compares False: no pair
+    if blocked is not None:
+        ok &= ~_window_any(np.asarray(blocked, dtype=bool), lag)
+    for values in (same or {}).values():
+        v = np.asarray(values)
+        ok &= v[:-lag] == v[lag:]
+    out[:-lag] = ok
+    return out
+
+
+def _laplace_difference_median() -> float:
+    """median|ε1 − ε2| / σ for independent Laplace errors of sd σ (derived in the module notes).
+
+    P(|δ| > y) = (1 + y/(2β))·exp(−y/β); the median u·β solves (1 + u/2)·e^(−u) = 1/2.
+    """
+    from scipy.optimize import brentq
+
+    u = brentq(lambda v: (1.0 + 0.5 * v) * math.exp(-v) - 0.5, 0.5, 2.0)
+    return u / math.sqrt(2.0)
+
+
+#: median|ε1 − ε2| / σ for independent Laplace errors: 1.1462/√2 ≈ 0.8105 (derived)
+LAPLACE_MEDIAN_ABS_DIFFERENCE = _laplace_difference_median()
+
+
+def _fit_bins(m_abs: np.ndarray, d_abs: np.ndarray, n_bins: int):
+    """σ per quantile bin of |m| from the median |δ|, and a, b ≥ 0 fitted to the bins."""
+    edges = np.unique(np.quantile(m_abs, np.linspace(0.0, 1.0, int(n_bins) + 1)))
+    which = np.clip(np.searchsorted(edges, m_abs, side="right") - 1, 0, max(edges.size - 2, 0))
+    bins = []
+    for k in range(max(edges.size - 1, 1)):
+        sel = which == k
+        if sel.sum() >= 5:
+            bins.append({"flux_abs_mean": float(m_abs[sel].mean()),
+                         "sd": float(np.median(d_abs[sel]) / LAPLACE_MEDIAN_ABS_DIFFERENCE),
+                         "sd_from_mean": float(d_abs[sel].mean() / LAPLACE_MEAN_ABS_DIFFERENCE),
+                         "n": int(sel.sum())})
+    if len(bins) < 2:
+        return float("nan"), float("nan"), bins
+    xb = np.array([b["flux_abs_mean"] for b in bins])
+    sb = np.array([b["sd"] for b in bins])
+    nb = np.array([b["n"] for b in bins], dtype=float)
+    # the sd of a bin's estimate ∝ σ/√n: weights n/σ²
+    w = np.sqrt(nb) / np.maximum(sb, 1e-6)
+    coef, _ = nnls(np.column_stack([np.ones_like(xb), xb]) * w[:, None], sb * w)
+    return float(coef[0]), float(coef[1]), bins
+
+
+def fit_random_error(x1, x2, *, by_sign: bool = False, min_pairs: int = 100,
+                     min_pairs_by_sign: int = 200, pairs_per_bin: int = 50) -> dict:
+    """Fit sd = a + b·|flux| of the random error from paired observations.
+
+    Parameters
+    ----------
+    x1, x2 : array_like
+        The two members of each pair [W m-2] (same length; non-finite pairs are dropped).
+    by_sign : bool, optional
+        Use separate (a, b) for positive and negative pair means where each side has at
+        least ``min_pairs_by_sign`` pairs. The sign fits are reported in any case.
+    min_pairs : int, optional
+        Fewest pairs for a model; fewer: ``a`` and ``b`` are None.
+    pairs_per_bin : int, optional
+        Pairs per quantile bin of |m| (5 to 20 bins).
+
+    Returns
+    -------
+    dict
+        ``a`` [W m-2], ``b`` [-], ``n_pairs``, ``estimator`` (text), ``positive`` and
+        ``negative`` (each ``{"a", "b", "n_pairs"}`` or None), ``use_sign_fits`` (bool) and
+        ``bins`` (list of ``{"flux_abs_mean", "sd", "sd_from_mean", "n"}``).
+
+    Notes
+    -----
+    Pairs are binned by |m| = |x1 + x2|/2 (quantile bins); in each bin
+    σ = median|x1 − x2| / 0.8105 (independent Laplace errors, module notes); then
+    sd = a + b·|m| is fitted to the bins by non-negative weighted least squares (weights
+    √n/σ). The median, not the mean, of |δ|: pairs whose true fluxes differ (the conditions
+    are only similar) form a heavy tail that the mean follows and the median hardly does.
+    ``sd_from_mean`` = (2√2/3)·mean|δ| is reported beside it.
+
+    References
+    ----------
+    Hollinger and Richardson (2005); Richardson et al. (2006).
+    """
+    x1 = np.asarray(x1, dtype=float)
+    x2 = np.asarray(x2, dtype=float)
+    ok = np.isfinite(x1) & np.isfinite(x2)
+    x1, x2 = x1[ok], x2[ok]
+    m = 0.5 * (x1 + x2)
+    d_abs = np.abs(x1 - x2)
+    m_abs = np.abs(m)
+    out = {"a": None, "b": None, "n_pairs": int(m.size),
+           "estimator": "sd = a + b|flux| fitted to per-bin sd = median|x1 - x2|/0.8105 "
+                        "(independent Laplace errors), weighted non-negative least squares",
+           "positive": None, "negative": None, "use_sign_fits": False, "bins": []}
+    if m.size < max(int(min_pairs), 10):
+        return out
+
+    def n_bins(k):
+        return int(np.clip(k // max(int(pairs_per_bin), 5), 5, 20))
+
+    a, b, bins = _fit_bins(m_abs, d_abs, n_bins(m.size))
+    if not np.isfinite(a):
+        return out
+    out["a"], out["b"], out["bins"] = a, b, bins
+    sides = {}
+    for name, sel in (("positive", m >= 0), ("negative", m < 0)):
+        if sel.sum() >= max(int(min_pairs), 10):
+            sa, sb, _ = _fit_bins(m_abs[sel], d_abs[sel], n_bins(int(sel.sum())))
+            if np.isfinite(sa):
+                sides[name] = {"a": sa, "b": sb, "n_pairs": int(sel.sum())}
+                out[name] = sides[name]
+    out["use_sign_fits"] = bool(by_sign and all(
+        name in sides and sides[name]["n_pairs"] >= int(min_pairs_by_sign)
+        for name in ("positive", "negative")))
+    return out
+
+
+def random_error_sd(x, model: dict) -> np.ndarray:
+    """Random-error sd [W m-2] of flux values ``x`` from a :func:`fit_random_error` model.
+
+    NaN where ``x`` is NaN or the model has no fit.
+    """
+    x = np.asarray(x, dtype=float)
+    if model.get("a") is None:
+        return np.full(x.shape, np.nan)
+    sd = model["a"] + model["b"] * np.abs(x)
+    if model.get("use_sign_fits"):
+        neg, pos = model["negative"], model["positive"]
+        sd = np.where(x < 0, neg["a"] + neg["b"] * np.abs(x), pos["a"] + pos["b"] * np.abs(x))
+    return np.where(np.isfinite(x), sd, np.nan)
+
+
+# ---------------------------------------------------------------------------------------
+# filling error
+# ---------------------------------------------------------------------------------------
+
+
+def time_of_day_spread(x, index: pd.DatetimeIndex, interval: pd.Timedelta, *, half_window_days: int,
+                       min_values: int = 5) -> np.ndarray:
+    """SD of accepted values at the same clock time (±1 interval), ±``half_window_days``.
+
+    Parameters
+    ----------
+    x : array_like
+        Accepted flux values (NaN elsewhere) [W m-2] on a regular grid.
+    index : pandas.DatetimeIndex
+        The grid (local clock time).
+    interval : pandas.Timedelta
+    half_window_days : int
+        Days before and after.
+    min_values : int, optional
+        Fewest values for a spread (else NaN).
+
+    Returns
+    -------
+    numpy.ndarray
+        The spread [W m-2] at every interval: the error of a mean-diurnal-course estimate
+        (Falge et al. 2001) of that interval.
+    """
+    x = np.asarray(x, dtype=float)
+    n = x.size
+    per_day = int(pd.Timedelta(days=1) / interval)
+    local = index.tz_localize(None) if index.tz is not None else index
+    day0 = local[0].normalize() if n else pd.Timestamp(0)
+    pos = np.asarray((local - day0) / interval, dtype=np.int64) if n else np.zeros(0, np.int64)
+    days = int(pos[-1] // per_day) + 1 if n else 0
+    grid = np.full((days, per_day), np.nan)
+    grid[pos // per_day, pos % per_day] = x
+    # ±1 interval of clock time: neighbouring columns (wrapping over midnight)
+    stack = np.stack([np.roll(grid, s, axis=1) for s in (-1, 0, 1)], axis=2)
+    v = np.isfinite(stack)
+    s1 = np.where(v, stack, 0.0).sum(axis=2)
+    s2 = np.where(v, stack * stack, 0.0).sum(axis=2)
+    cnt = v.sum(axis=2).astype(float)
+    w = 2 * int(half_window_days) + 1
+    kernel = np.ones(w)
+
+    def roll_days(a):
+        return np.apply_along_axis(lambda col: np.convolve(col, kernel, mode="same"), 0, a)
+
+    S1, S2, C = roll_days(s1), roll_days(s2), roll_days(cnt)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = (S2 - S1 * S1 / C) / (C - 1.0)
+    sd = np.where(C >= max(int(min_values), 2), np.sqrt(np.maximum(var, 0.0)), np.nan)
+    return sd[pos // per_day, pos % per_day]
+
+
+def fill_error_sd(fill_sd, method, quality, cv_rmse: dict, *, reduced=None, spread=None) -> np.ndarray:
+    """Error sd of filled values [W m-2]: the largest of the available estimates.
+
+    Parameters
+    ----------
+    fill_sd : array_like
+        The filling stage's spread of the estimate (``<flux>_fill_sd``) [W m-2].
+    method, quality : array_like of str
+        ``<flux>_fill_method`` and ``<flux>_fill_quality``.
+    cv_rmse : dict of str to float
+        Cross-validated RMSE per fill method (``fill_skill.by_method[flux][m]["rmse"]``).
+    reduced : array_like of bool, optional
+        True for fills of reduced quality (besides ``fair`` and ``poor``): e.g. made from
+        filled drivers.
+    spread : array_like, optional
+        The flux's time-of-day spread (:func:`time_of_day_spread`); used for fills of
+        reduced quality.
+
+    Returns
+    -------
+    numpy.ndarray
+        NaN where the value is measured or not filled.
+    """
+    method = np.asarray(method, dtype=object).astype(str)
+    quality = np.asarray(quality, dtype=object).astype(str)
+    filled = (method != "measured") & (method != "not_filled")
+    sd = np.asarray(fill_sd, dtype=float).copy()
+    sd = np.where(np.isfinite(sd), sd, 0.0)
+    rmse = np.zeros(method.size)
+    for name, value in (cv_rmse or {}).items():
+        if value is not None and np.isfinite(value):
+            rmse[method == name] = float(value)
+    if rmse[filled].min(initial=np.inf) == 0.0:  # a method the cross-validation did not see
+        known = [float(v) for v in (cv_rmse or {}).values() if v is not None and np.isfinite(v)]
+        if known:
+            rmse = np.where(filled & (rmse == 0.0), max(known), rmse)
+    out = np.maximum(sd, rmse)
+    low = np.isin(quality, _REDUCED_QUALITY)
+    if reduced is not None:
+        low |= np.asarray(reduced, dtype=bool)
+    if spread is not None:
+        sp = np.asarray(spread, dtype=float)
+        out = np.where(low & np.isfinite(sp), np.maximum(out, sp), out)
+    return np.where(filled, out, np.nan)
+
+
+# ---------------------------------------------------------------------------------------
+# Monte Carlo propagation
+# ---------------------------------------------------------------------------------------
+
+
+def gap_labels(filled) -> np.ndarray:
+    """Label of the contiguous run of filled values each interval belongs to (−1: none)."""
+    filled = np.asarray(filled, dtype=bool)
+    start = filled & ~np.concatenate(([False], filled[:-1]))
+    lab = np.cumsum(start) - 1
+    return np.where(filled, lab, -1)
+
+
+def _gap_ar1(z: np.ndarray, filled: np.ndarray, phi: float) -> np.ndarray:
+    """Unit-variance AR(1) along axis 1 over the filled positions, restarted at every gap.
+
+    ``z`` holds standard-normal innovations (draws × k, k = filled positions in order).
+    The recursion y_t = φ·y_{t−1} + √(1 − φ²)·z_t is run over the concatenated gaps with
+    one :func:`scipy.signal.lfilter`; at a gap start the innovation has unit weight, and
+    the state carried in from the previous gap, φ^(t − start + 1)·y_(start − 1), is
+    subtracted (exact, since the carried part decays geometrically).
+    """
+    pos = np.flatnonzero(filled)
+    k = pos.size
+    if k == 0:
+        return z
+    new_gap = np.ones(k, dtype=bool)
+    new_gap[1:] = pos[1:] != pos[:-1] + 1
+    if phi <= 0.0:
+        return z
+    c = np.where(new_gap, 1.0, math.sqrt(max(1.0 - phi * phi, 0.0)))
+    y = lfilter([1.0], [1.0, -phi], z * c[None, :], axis=1)
+    starts = np.flatnonzero(new_gap)
+    gid = np.cumsum(new_gap) - 1
+    offset = np.arange(k) - starts[gid] + 1  # steps since the value before the gap start
+    prev = starts[gid] - 1
+    carried = np.where(prev[None, :] >= 0, y[:, np.maximum(prev, 0)], 0.0)
+    with np.errstate(under="ignore"):
+        decay = phi ** offset.astype(float)
+    return y - carried * decay[None, :]
+
+
+def simulate_errors(sd, measured, filled, *, draws: int, seed: int, phi: float,
+                    weights: np.ndarray, groups: list[np.ndarray], chunk_elements: int = 4_000_000):
+    """Monte Carlo sums of per-interval errors over groups of intervals.
+
+    Parameters
+    ----------
+    sd : array_like
+        Error sd of every interval [W m-2] (NaN or 0: no error).
+    measured, filled : array_like of bool
+        Measured values (independent Laplace errors) and filled values (Gaussian, AR(1)
+        within each contiguous gap with coefficient ``phi`` per step; 1 = one draw per gap).
+    draws, seed : int
+        Number of Monte Carlo draws and the seed of :func:`numpy.random.default_rng`.
+    phi : float
+        AR(1) coefficient per interval within gaps, 0 ≤ phi ≤ 1.
+    weights : array_like
+        Conversion of an error in W m-2 to the summed unit (mm or MJ m-2) per interval.
+    groups : list of array_like of int
+        Each a group label per interval (−1: in no group); the error sums are returned per
+        group label 0 … max.
+    chunk_elements : int, optional
+        Largest draws × intervals block held at once.
+
+    Returns
+    -------
+    list of tuple of numpy.ndarray
+        Per grouping: (measured part, filled part), each draws × groups.
+    """
+    sd = np.nan_to_num(np.asarray(sd, dtype=float), nan=0.0)
+    measured = np.asarray(measured, dtype=bool) & (sd > 0)
+    filled = np.asarray(filled, dtype=bool) & (sd > 0) & ~measured
+    weights = np.nan_to_num(np.asarray(weights, dtype=float), nan=0.0)
+    n = sd.size
+    rng = np.random.default_rng(int(seed))
+    groups = [np.asarray(g, dtype=np.int64) for g in groups]
+    n_groups = [int(g.max()) + 1 if g.size and g.max() >= 0 else 0 for g in groups]
+    out = [(np.zeros((draws, k)), np.zeros((draws, k))) for k in n_groups]
+    mpos = np.flatnonzero(measured)
+    fpos = np.flatnonzero(filled)
+    # Laplace scale β = sd/√2 (variance 2β²)
+    m_scale = sd[mpos] / math.sqrt(2.0) * weights[mpos]
+    f_scale = sd[fpos] * weights[fpos]
+    step = max(1, int(chunk_elements // max(n, 1)))
+    for d0 in range(0, draws, step):
+        d1 = min(draws, d0 + step)
+        nd = d1 - d0
+        em = rng.laplace(0.0, 1.0, (nd, mpos.size)) * m_scale[None, :]
+        ef = _gap_ar1(rng.standard_normal((nd, fpos.size)), filled, phi) * f_scale[None, :]
+        for g, k, (om, of) in zip(groups, n_groups, out):
+            if k == 0:
+                continue
+            for pos, e, o in ((mpos, em, om), (fpos, ef, of)):
+                lab = g[pos]
+                keep = lab >= 0
+                if not keep.any():
+                    continue
+                # sums per group: one matrix product with a sparse-free indicator via bincount
+                flat = (np.arange(nd)[:, None] * k + lab[keep][None, :]).ravel()
+                o[d0:d1] += np.bincount(flat, weights=e[:, keep].ravel(), minlength=nd * k).reshape(nd, k)
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# the stage
+# ---------------------------------------------------------------------------------------
+
+
+def _accepted(frame, flags, name):
+    if name not in frame.columns:
+        return None
+    v = frame[name].to_numpy(dtype=float, copy=True)
+    if name in flags.columns:
+        v[flags[name].to_numpy() != 0] = np.nan
+    return v
+
+
+def _num(x):
+    return None if x is None or not np.isfinite(x) else float(x)
+
+
+def _closure_factor_everywhere(closure: pd.DataFrame, frozen: np.ndarray, months: np.ndarray):
+    """The closure factor on every interval: the closure stage's where it corrected the
+    period, else the median of the corrected periods' factors in the same month, else of
+    the record; 1 (no correction) on snow or frozen intervals, as in the closure stage."""
+    f = closure["closure_factor"].to_numpy(dtype=float) if "closure_factor" in closure else \
+        np.full(len(closure), np.nan)
+    direct = np.isfinite(f) & ~frozen
+    out = np.where(direct, f, np.nan)
+    overall = float(np.nanmedian(f[direct])) if direct.any() else float("nan")
+    s = pd.Series(np.where(direct, f, np.nan))
+    month_median = s.groupby(months).transform("median").to_numpy()
+    out = np.where(np.isfinite(out), out, month_median)
+    out = np.where(np.isfinite(out), out, overall)
+    out = np.where(frozen, 1.0, out)
+    return out, direct
+
+
+def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
+                       filling: pd.DataFrame, fill_summary: dict,
+                       closure: pd.DataFrame | None = None) -> StageResult:
+    """Random and filling errors of LE and H and the uncertainty of the ET and energy totals.
+
+    Parameters
+    ----------
+    frame, flags : pandas.DataFrame
+        The working frame and flags after QC (accepted where the flag is 0). Used: ``le``,
+        ``h``, ``rg``, ``ta``, ``vpd``, ``wind``, ``precip``, ``snow_or_frozen``,
+        ``canopy_height_m``, ``measurement_height_m``, ``irga``, ``irrigated`` (as present).
+    site : SiteInfo
+        With ``interval_minutes`` resolved.
+    rules : dict
+        The rule set: ``[uncertainty]`` (standard values for absent keys) and
+        ``[wet] rain_above``.
+    filling : pandas.DataFrame
+        The filling stage's columns (``le_filled``, ``le_fill_method``, ``le_fill_quality``,
+        ``le_fill_sd``, ``le_in_long_gap``, the same for ``h``, and the drivers'
+        ``<x>_fill_method``).
+    fill_summary : dict
+        The filling stage's summary (``fill_skill`` with ``by_method``).
+    closure : pandas.DataFrame, optional
+        The closure stage's columns (``closure_factor``); None: no closure bracket.
+
+    Returns
+    -------
+    StageResult
+        columns: ``le_random_sd``, ``h_random_sd`` (measured values), ``le_fill_error_sd``,
+        ``h_fill_error_sd`` (filled values), ``le_total_sd``, ``h_total_sd`` (every value of
+        ``<flux>_filled``), all W m-2; ``le_error_gap`` (label of the contiguous filled run,
+        −1 for measured values).
+        daily (index ``date``): ``et_mm_sd``, ``et_mm_p025``, ``et_mm_p975``,
+        ``et_closed_mm`` [mm] (NaN on days with a value missing from ``le_filled``).
+        summary: ``uncertainty`` (the random-error models, the filling-error and Monte
+        Carlo settings, and a sentence on which dominates) and ``totals`` (records for
+        every month, calendar year and the whole record; see the module notes).
+
+    Warns
+    -----
+    TowerflowWarning
+        Too few pairs for a random-error model; a driver of the pairing rule missing; no
+        precip (rain not excluded from pairs).
+    """
+    u = uncertainty_rules(rules)
+    wet_rules = dict(standard_rules().get("wet", {}))
+    wet_rules.update((rules or {}).get("wet", {}) or {})
+    warnings_out: list[str] = []
+
+    def _warn(msg):
+        warn(msg)
+        warnings_out.append(msg)
+
+    index = frame.index
+    n = len(index)
+    interval = site.interval
+    seconds = interval.total_seconds()
+    lag = int(round(duration(u["pair_offset"]) / interval))
+    level = float(u["interval_level"])
+    if not 0.0 < level < 1.0:
+        raise RuleError("interval_level must lie between 0 and 1", key="uncertainty.interval_level")
+
+    # ---- pairing conditions -------------------------------------------------------------
+    drivers, tolerances = {}, {}
+    for name in ("rg", "ta", "wind", "vpd"):
+        tol = u.get(f"tolerance_{name}")
+        if tol is None:
+            continue
+        v = _accepted(frame, flags, name)
+        if v is None:
+            _warn(f"uncertainty: no {name}: the pairing rule drops its tolerance")
+            continue
+        drivers[name], tolerances[name] = v, float(tol)
+    blocked = np.zeros(n, dtype=bool)
+    if "precip" in frame.columns:
+        p = _accepted(frame, flags, "precip")
+        with np.errstate(invalid="ignore"):
+            blocked |= ~(p <= float(wet_rules.get("rain_above", 0.0)))  # rain or unknown
+    else:
+        _warn("uncertainty: no precip: pairs across rain cannot be excluded")
+    if "irrigated" in frame.columns:
+        blocked |= frame["irrigated"].fillna(False).to_numpy(dtype=bool)
+    lead = int(round(duration(u["rain_lead"]) / interval))
+    if lead > 0:  # a wet canopy outlasts the rain: the pair's window starts `lead` earlier
+        c = np.concatenate(([0], np.cumsum(blocked.astype(np.int64))))
+        k = np.arange(n)
+        blocked = (c[k + 1] - c[np.maximum(k - lead, 0)]) > 0
+    if len(flags.columns):
+        hist = (flags.to_numpy() & flagbits.HISTORY).any(axis=1)
+        blocked |= hist
+    same = {c: frame[c].to_numpy() for c in ("canopy_height_m", "measurement_height_m", "irga")
+            if c in frame.columns}
+
+    # ---- random error per flux ------------------------------------------------------------
+    models = {}
+    cols = {}
+    for flux in _FLUXES:
+        x = _accepted(frame, flags, flux)
+        if x is None:
+            x = np.full(n, np.nan)
+        ok = pair_mask(x, lag=lag, drivers=drivers, tolerances=tolerances, blocked=blocked, same=same)
+        i = np.flatnonzero(ok)
+        model = fit_random_error(x[i], x[i + lag], by_sign=bool(u["fit_by_sign"]),
+                                 min_pairs=int(u["min_pairs"]),
+                                 min_pairs_by_sign=int(u["min_pairs_by_sign"]))
+        if model["a"] is None:
+            _warn(f"uncertainty: {flux}: {model['n_pairs']} pairs, fewer than {u['min_pairs']}: "
+                  "no random-error model (the band leaves the random error out)")
+        models[flux] = model
+        cols[f"{flux}_random_sd"] = random_error_sd(x, model)
+
+    # ---- filling error ----------------------------------------------------------------------
+    by_method = ((fill_summary or {}).get("fill_skill", {}) or {}).get("by_method", {}) or {}
+    drivers_filled = np.zeros(n, dtype=bool)
+    for name in ("rg", "ta", "vpd"):
+        c = f"{name}_fill_method"
+        if c in filling.columns:
+            drivers_filled |= np.isin(filling[c].to_numpy(dtype=object).astype(str), _FILLED_DRIVER_METHODS)
+    half = int(round(duration(u["time_of_day_window"]) / pd.Timedelta(days=1)))
+    tau = duration(u["fill_error_correlation_time"])
+    phi = math.exp(-interval / tau) if tau > pd.Timedelta(0) else 0.0
+    measured, filled_mask = {}, {}
+    for flux in _FLUXES:
+        method = filling[f"{flux}_fill_method"].to_numpy(dtype=object).astype(str)
+        quality = filling[f"{flux}_fill_quality"].to_numpy(dtype=object).astype(str)
+        x = _accepted(frame, flags, flux)
+        x = np.full(n, np.nan) if x is None else x
+        spread = time_of_day_spread(x, index, interval, half_window_days=half)
+        cv = {m: (s or {}).get("rmse") for m, s in (by_method.get(flux, {}) or {}).items()}
+        fe = fill_error_sd(filling[f"{flux}_fill_sd"].to_numpy(dtype=float), method, quality, cv,
+                           reduced=drivers_filled, spread=spread)
+        cols[f"{flux}_fill_error_sd"] = fe
+        measured[flux] = method == "measured"
+        filled_mask[flux] = (method != "measured") & (method != "not_filled") & \
+            np.isfinite(filling[f"{flux}_filled"].to_numpy(dtype=float))
+        cols[f"{flux}_total_sd"] = np.where(measured[flux], cols[f"{flux}_random_sd"],
+                                            np.where(filled_mask[flux], fe, np.nan))
+    cols["le_error_gap"] = gap_labels(filled_mask["le"])
+    columns = pd.DataFrame(cols, index=index)
+
+    # ---- conversion factors -------------------------------------------------------------------
+    ta = pd.Series(frame["ta"].to_numpy(dtype=float) if "ta" in frame else np.full(n, np.nan), index=index)
+    ta = ta.interpolate(limit_direction="both").fillna(20.0).to_numpy()  # as conductance.et_mm_daily
+    frozen = frame["snow_or_frozen"].astype("boolean").fillna(False).to_numpy(dtype=bool) \
+        if "snow_or_frozen" in frame.columns else np.zeros(n, dtype=bool)
+    mm_per_w = np.asarray(micromet.evaporation_mm(np.ones(n), ta, seconds, frozen=frozen), dtype=float)
+    mj_per_w = np.full(n, seconds / 1e6)
+
+    local = index.tz_localize(None) if index.tz is not None else index
+    day = local.normalize()
+    day_codes, day_values = pd.factorize(day, sort=True)
+    months = local.to_period("M")
+    month_codes, month_values = pd.factorize(months, sort=True)
+    years = local.year.to_numpy()
+    year_codes, year_values = pd.factorize(years, sort=True)
+    record = np.zeros(n, dtype=np.int64)
+
+    le_f = filling["le_filled"].to_numpy(dtype=float)
+    h_f = filling["h_filled"].to_numpy(dtype=float)
+    draws = int(u["draws"])
+    seed = int(u["seed"])
+    groups = [day_codes, month_codes, year_codes, record]
+    mc = {}
+    for name, flux, w in (("et", "le", mm_per_w), ("le_energy", "le", mj_per_w), ("h_energy", "h", mj_per_w)):
+        mc[name] = simulate_errors(cols[f"{flux}_total_sd"], measured[flux], filled_mask[flux],
+                                   draws=draws, seed=seed + (0 if flux == "le" else 1), phi=phi,
+                                   weights=w, groups=groups)
+
+    if closure is not None and len(closure):
+        factor, direct = _closure_factor_everywhere(closure.reindex(index), frozen, month_codes)
+        le_closed_all = le_f * factor
+    else:
+        factor = np.full(n, np.nan)
+        direct = np.zeros(n, dtype=bool)
+        le_closed_all = np.full(n, np.nan)
+
+    q_lo, q_hi = (1.0 - level) / 2.0, 1.0 - (1.0 - level) / 2.0
+    in_long = filling["le_in_long_gap"].to_numpy(dtype=bool) if "le_in_long_gap" in filling else \
+        np.zeros(n, dtype=bool)
+
+    def table(codes, k):
+        """Per group: estimates, MC statistics."""
+        def s(v, w):
+            vals = np.where(np.isfinite(v), v * w, 0.0)
+            return np.bincount(codes, weights=vals, minlength=k)
+        cnt = np.bincount(codes, minlength=k).astype(float)
+        present = np.bincount(codes, weights=np.isfinite(le_f).astype(float), minlength=k)
+        res = {
+            "n_intervals": cnt,
+            "complete": present == cnt,
+            "et_mm": s(le_f, mm_per_w),
+            "et_closed_mm": np.where(np.bincount(codes, weights=np.isfinite(le_closed_all), minlength=k) > 0,
+                                     s(le_closed_all, mm_per_w), np.nan),
+            "le_energy_mj": s(le_f, mj_per_w),
+            "h_energy_mj": s(h_f, mj_per_w),
+            "filled_fraction": np.bincount(codes, weights=filled_mask["le"].astype(float), minlength=k) / cnt,
+            "long_gap_fraction": np.bincount(codes, weights=in_long.astype(float), minlength=k) / cnt,
+            "missing_fraction": 1.0 - present / cnt,
+            "closure_corrected_fraction": np.bincount(codes, weights=direct.astype(float), minlength=k) / cnt,
+        }
+        return res
+
+    def mc_stats(part, which):
+        em, ef = part[which]
+        tot = em + ef
+        return tot.std(axis=0, ddof=1), np.quantile(tot, q_lo, axis=0), np.quantile(tot, q_hi, axis=0), \
+            em.std(axis=0, ddof=1), ef.std(axis=0, ddof=1)
+
+    # ---- daily ------------------------------------------------------------------------------
+    dt = table(day_codes, len(day_values))
+    sd_d, lo_d, hi_d, _, _ = mc_stats(mc["et"], 0)
+    complete_d = dt["complete"]
+    daily = pd.DataFrame({
+        "et_mm_sd": np.where(complete_d, sd_d, np.nan),
+        "et_mm_p025": np.where(complete_d, dt["et_mm"] + lo_d, np.nan),
+        "et_mm_p975": np.where(complete_d, dt["et_mm"] + hi_d, np.nan),
+        "et_closed_mm": np.where(complete_d, dt["et_closed_mm"], np.nan),
+    }, index=pd.DatetimeIndex(day_values, name="date"))
+
+    # ---- totals -------------------------------------------------------------------------------
+    totals = []
+    for which, (label, codes, values) in enumerate(
+            [("month", month_codes, month_values), ("year", year_codes, year_values),
+             ("record", record, np.array(["record"]))], start=1):
+        t = table(codes, len(values))
+        sd, lo, hi, sd_m, sd_f = mc_stats(mc["et"], which)
+        le_sd = mc_stats(mc["le_energy"], which)[0]
+        h_sd = mc_stats(mc["h_energy"], which)[0]
+        first = pd.Series(local).groupby(codes).min().to_numpy()
+        last = pd.Series(local).groupby(codes).max().to_numpy()
+        for k, v in enumerate(values):
+            totals.append({
+                "period_type": label,
+                "period": str(v),
+                "start": pd.Timestamp(first[k]).isoformat(),
+                "end": (pd.Timestamp(last[k]) + interval).isoformat(),
+                "n_intervals": int(t["n_intervals"][k]),
+                "complete": bool(t["complete"][k]),
+                "et_mm": _num(t["et_mm"][k]),
+                "et_mm_sd": _num(sd[k]),
+                "et_mm_p025": _num(t["et_mm"][k] + lo[k]),
+                "et_mm_p975": _num(t["et_mm"][k] + hi[k]),
+                "et_random_sd_mm": _num(sd_m[k]),
+                "et_fill_sd_mm": _num(sd_f[k]),
+                "et_closed_mm": _num(t["et_closed_mm"][k]),
+                "filled_fraction": _num(t["filled_fraction"][k]),
+                "long_gap_fraction": _num(t["long_gap_fraction"][k]),
+                "missing_fraction": _num(t["missing_fraction"][k]),
+                "closure_corrected_fraction": _num(t["closure_corrected_fraction"][k]),
+                "le_energy_mj": _num(t["le_energy_mj"][k]),
+                "le_energy_mj_sd": _num(le_sd[k]),
+                "h_energy_mj": _num(t["h_energy_mj"][k]),
+                "h_energy_mj_sd": _num(h_sd[k]),
+            })
+
+    whole = totals[-1]
+    band = (whole["et_mm_p975"] - whole["et_mm_p025"]) / 2.0 if whole["et_mm_p975"] is not None else None
+    bracket = (whole["et_closed_mm"] - whole["et_mm"]) if whole["et_closed_mm"] is not None else None
+    if band is None or whole["et_mm"] is None:
+        verdict = "No ET total: nothing to compare."
+    elif bracket is None:
+        verdict = (f"Whole record: ET {whole['et_mm']:.1f} mm ± {band:.1f} mm ({level:.0%} random and "
+                   "filling band); no closure correction was available, so the systematic closure "
+                   "error (typically 10-30 % of LE, Wilson et al. 2002) is not bracketed.")
+    else:
+        pct = 100.0 * abs(bracket) / abs(whole["et_mm"]) if whole["et_mm"] else float("nan")
+        bpct = 100.0 * band / abs(whole["et_mm"]) if whole["et_mm"] else float("nan")
+        dominant = "the closure bracket (systematic)" if abs(bracket) > band else \
+            "the random and filling band"
+        verdict = (f"Whole record: ET {whole['et_mm']:.1f} mm; the {level:.0%} random and filling band "
+                   f"is ±{band:.1f} mm ({bpct:.1f} %), while closing the energy balance moves ET by "
+                   f"{bracket:+.1f} mm ({pct:.1f} %) to {whole['et_closed_mm']:.1f} mm: {dominant} "
+                   "dominates (Wilson et al. 2002).")
+    summary = {
+        "uncertainty": {
+            "random_error": {flux: models[flux] for flux in _FLUXES},
+            "pairing": {"offset": str(u["pair_offset"]), "tolerances": tolerances,
+                        "excluded_across": ["rain or unknown precip", "irrigation",
+                                            "site-history exclusion (bit 64)",
+                                            "change of canopy height, measurement height or analyser"]},
+            "filling_error": "max(fill sd, cross-validated RMSE of the method; for fair/poor fills "
+                             "or fills from filled drivers also the time-of-day spread)",
+            "fill_error_correlation_time": str(u["fill_error_correlation_time"]),
+            "fill_error_ar1_coefficient": float(phi),
+            "draws": draws, "seed": seed, "interval_level": level,
+            "closure_factor_fallback": "month median of corrected periods, else record median; "
+                                       "1 on snow or frozen intervals",
+            "dominant": verdict,
+        },
+        "totals": totals,
+    }
+    return StageResult(columns=columns, summary=summary, warnings=warnings_out, daily=daily)
