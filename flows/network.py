@@ -65,17 +65,24 @@ def with_dask(*, address: str | None = None, workers: int | None = None):
 
 
 @flow(name="towerflow-network-weekly")
-def weekly_network_flow(network_path: str, out_dir: str, report: bool = True) -> dict:
-    """What ``towerflow serve`` schedules: the network run plus its summary and report."""
+def weekly_network_flow(network_path: str, out_dir: str, report: bool = True, workers: int | None = None,
+                        dask_address: str | None = None) -> dict:
+    """What ``towerflow serve`` schedules: the network run plus its summary and report.
+
+    Sites run on ``workers`` threads (default: the CPU cores) or, with ``dask_address``, on
+    that Dask scheduler. The run fails (red in the Prefect UI) when any site failed; the
+    others' outputs and the summary are written first.
+    """
     from pathlib import Path
 
-    from towerflow.network import finish_network, site_jobs
     from pipeline.config import load_network_config
+    from towerflow.network import finish_network, site_jobs
 
     network = load_network_config(network_path)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    results = network_flow(site_jobs(network, out, report=report))
+    runner = with_dask(address=dask_address) if dask_address else with_threads(workers)
+    results = runner(site_jobs(network, out, report=report))
     finish_network(network, out, results, report=report)
     failed = [r for r in results if r["status"] != "ok"]
     if failed:

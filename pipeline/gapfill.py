@@ -384,6 +384,20 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
             fill_skill[flux] = {"rmse": None, "bias": None, "r2": None, "n": 0, "method": chosen}
             fill_skill.setdefault("by_method", {})[flux] = {}
 
+    # hidden-vs-filled pairs of the chosen methods, for the report's skill scatter (a capped,
+    # evenly spaced sample keeps summary.json small)
+    fill_validation = {}
+    for flux in ("le", "h"):
+        chosen = choice[flux]["chosen"]
+        if (flux, chosen) not in cv_results:
+            continue
+        est = cv_results[(flux, chosen)][0]
+        pairs = np.flatnonzero(hidden & np.isfinite(est) & np.isfinite(obs[flux]))
+        if pairs.size > 2000:
+            pairs = pairs[np.linspace(0, pairs.size - 1, 2000).astype(int)]
+        fill_validation[flux] = {"method": chosen, "observed": obs[flux][pairs].round(3).tolist(),
+                                 "filled": est[pairs].round(3).tolist()}
+
     # ---- the fill itself ---------------------------------------------------------------------
     cols = {}
     (le_est, le_sd, le_m, le_q), le_info = _fill_le(ctx, choice["le"]["chosen"], obs["le"], to_fill["le"])
@@ -421,6 +435,7 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
                               "periods": [[str(index[a]), str(index[b - 1])] for a, b in zip(s, e)]}
     summary = {
         "fill_skill": fill_skill,
+        "fill_validation": fill_validation,
         "gaps": {flux: float((~acc[flux]).mean()) if n else 0.0 for flux in ("le", "h")},
         "fill_choice": choice,
         "long_gaps": long_summary,

@@ -233,36 +233,44 @@ def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, availabl
     site_wide = np.zeros(n, dtype=bool)
     obs_day = is_day & np.isfinite(le_obs)
     info["windows"] = int(lo.size)
+    # block b is the contiguous range [b_lo, b_hi) (labels ascend); each window works on the
+    # slice covering its block and its window only, so the loop costs O(n) in all, not
+    # O(n × windows); the same elements in the same order give the same fits
+    b_lo = np.searchsorted(labels, np.arange(lo.size), side="left")
+    b_hi = np.searchsorted(labels, np.arange(lo.size), side="right")
     for b in range(lo.size):  # loop over moving windows (tens per year), not over gaps
-        in_block = labels == b
-        targets = apply & in_block
-        sl = slice(lo[b], hi[b])
-        sel = np.zeros(n, dtype=bool)
-        sel[sl] = ok[sl]
-        theta = fit(sel, site_theta) if sel.sum() >= min_samples else None
+        u0, u1 = min(lo[b], b_lo[b]), max(hi[b], b_hi[b])
+        seg = slice(u0, u1)
+        in_block = np.zeros(u1 - u0, dtype=bool)
+        in_block[b_lo[b] - u0:b_hi[b] - u0] = True
+        targets = apply[seg] & in_block
+        sel = lo[b] + np.flatnonzero(ok[lo[b]:hi[b]])  # window intervals with an observed gs
+        theta = fit(sel, site_theta) if sel.size >= min_samples else None
         if theta is None:
             theta = site_theta
-            site_wide[in_block] = True
+            site_wide[b_lo[b]:b_hi[b]] = True
         else:
             info["windows_fitted"] += 1
         if theta is None:
             continue
-        ref = swc_f[sel].mean() if (swc_f is not None and sel.any()) else (
+        ref = swc_f[sel].mean() if (swc_f is not None and sel.size) else (
             np.nanmean(swc_f) if swc_f is not None else 0.0)
-        win = np.zeros(n, dtype=bool)
-        win[sl] = True
-        need = (targets | (win & obs_day))
-        dsw = (swc_f[need] - ref) if swc_f is not None else np.zeros(int(need.sum()))
+        win = np.zeros(u1 - u0, dtype=bool)
+        win[lo[b] - u0:hi[b] - u0] = True
+        need_local = targets | (win & obs_day[seg])
+        need = u0 + np.flatnonzero(need_local)
+        dsw = (swc_f[need] - ref) if swc_f is not None else np.zeros(need.size)
         with np.errstate(divide="ignore", invalid="ignore"):
             gs_pred = np.exp(_log_model(theta, np.maximum(rg[need], 0.0), vpd[need], dsw))
-        le_pred = np.full(n, np.nan)
-        le_pred[need] = micromet.penman_monteith(available_energy[need], ta[need], vpd[need],
-                                                 p_air[need], ga[need], gs_pred)
-        resid = le_pred[win & obs_day] - le_obs[win & obs_day]
+        le_pred = np.full(u1 - u0, np.nan)
+        le_pred[need_local] = micromet.penman_monteith(available_energy[need], ta[need], vpd[need],
+                                                       p_air[need], ga[need], gs_pred)
+        check = win & obs_day[seg]
+        resid = le_pred[check] - le_obs[seg][check]
         resid = resid[np.isfinite(resid)]
         spread = float(np.std(resid, ddof=1)) if resid.size > 1 else np.nan
-        est[targets] = le_pred[targets]
-        sd[targets] = spread
+        est[seg][targets] = le_pred[targets]
+        sd[seg][targets] = spread
     done = np.isfinite(est)
     if (done & ~np.isfinite(sd)).any():  # windows without enough residuals: the median spread
         spreads = sd[done & np.isfinite(sd)]

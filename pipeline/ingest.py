@@ -23,6 +23,14 @@ Reading conventions (documented choices)
 * ``24:00`` means midnight at the end of the day. ``hhmm`` without colon (``130`` = 01:30)
   is zero-padded before parsing when the format token is ``%H%M``.
 * Duplicate stamps with identical values merge (warning); conflicting values are an error.
+* Refused as declared wrongly rather than guessed: a decimal comma without
+  ``input.decimal = ","``; a file whose stamps are all further apart than the stream's
+  interval (a 60-min export in a 30-min stream); day and month swapped (rows that parse
+  only swapped, or file-order jumps of days that vanish when read swapped).
+* Memory: the bytes are scanned once in blocks (sha256, fields per line: a row with more
+  fields than the header is an error); pandas' C parser then reads only the stream's
+  columns in chunks of :data:`CHUNK_ROWS` rows into preallocated arrays, so a file of
+  hundreds of MB needs little more than its parsed values.
 
 Aggregation to the site interval (documented choices)
 -----------------------------------------------------
@@ -42,7 +50,6 @@ import csv
 import dataclasses
 import fnmatch
 import hashlib
-import io
 import math
 import re
 from dataclasses import dataclass, field
@@ -52,7 +59,7 @@ import numpy as np
 import pandas as pd
 
 from . import flags as flagbits
-from . import units
+from . import history, units
 from .config import CANONICAL_VARIABLES, SiteConfig, SiteInfo, StreamConfig
 from .errors import ConfigError, InputError, warn
 
@@ -79,6 +86,8 @@ DELIMITERS = (",", ";", "\t")
 _SWAP_JUMP = pd.Timedelta(days=2)
 #: format tokens that loggers write without leading zeros; zero-padded to this width
 _PAD_WIDTH = {"%H%M": 4, "%H%M%S": 6, "%j": 3}
+#: a number written with a decimal comma (12,5 or -0,25)
+_DECIMAL_COMMA = r"\s*[-+]?\d*,\d+\s*"
 #: an hour of "24" at the start of a time field (not a minute or second "24")
 _HOUR_24 = re.compile(r"(?<![\d:])24(:?)00(?!\d)")
 
@@ -200,8 +209,14 @@ def _read_header(path: Path, stream: StreamConfig) -> _Header:
     return _Header(names, delimiter, encoding)
 
 
+def _ts_columns(stream: StreamConfig) -> list[str]:
+    """The timestamp column(s) as a list (a single name is accepted too)."""
+    cols = stream.timestamp_column
+    return [cols] if isinstance(cols, str) else list(cols)
+
+
 def _stream_needs(stream: StreamConfig) -> list[str]:
-    return list(dict.fromkeys([*stream.timestamp_column, *stream.source_columns()]))
+    return list(dict.fromkeys([*_ts_columns(stream), *stream.source_columns()]))
 
 
 def _check_header(path: Path, header: _Header, stream: StreamConfig) -> list[str]:
@@ -283,7 +298,7 @@ def assign_stream(path, cfg: SiteConfig) -> StreamConfig:
 def _csv_chunks(path: Path, header: _Header, stream: StreamConfig):
     """The used columns as read by pandas' C parser (strings for timestamps), in chunks."""
     needed = _stream_needs(stream)
-    ts = set(stream.timestamp_column)
+    ts = set(_ts_columns(stream))
     str_missing = [str(m) for m in stream.missing]
     skip = sorted({int(r) + 1 for r in stream.skip_rows})  # file lines, header = 0
     try:
@@ -434,7 +449,7 @@ def _format_variants(fmt: str) -> list[str]:
 
 def _timestamp_text(df: pd.DataFrame, stream: StreamConfig) -> pd.Series:
     """The timestamp columns joined by one space, hhmm-type tokens zero-padded."""
-    cols = list(stream.timestamp_column)
+    cols = _ts_columns(stream)
     tokens = stream.timestamp_format.split()
     parts = [df[c] for c in cols]  # object columns of str (NaN where empty)
     if len(parts) == 1 and len(tokens) > 1 and any(t in _PAD_WIDTH for t in tokens):
@@ -549,7 +564,8 @@ def _check_swapped_jumps(path: Path, text: pd.Series, stamps: pd.Series, lines: 
     t, u = stamps.to_numpy(), alt.to_numpy()
     for i in jumps:
         fixes = (not pd.isna(u[i]) and abs(u[i] - t[i - 1]) <= _SWAP_JUMP) or \
-                (not pd.isna(u[i - 1]) and abs(t[i] - u[i - 1]) <= _SWAP_JUMP)
+                (not pd.isna(u[i - 1]) and abs(t[i] - u[i - 1]) <= _SWAP_JUMP) or \
+                (not pd.isna(u[i]) and not pd.isna(u[i - 1]) and abs(u[i] - u[i - 1]) <= _SWAP_JUMP)
         if fixes:
             raise InputError(
                 f"dates jump from {pd.Timestamp(t[i - 1]):%Y-%m-%d %H:%M} (row {lines[i - 1]}) to "
@@ -594,7 +610,7 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
         raise InputError(f"{scan.overfull_fields} fields where the header has {len(header.names)} "
                          "(a stray delimiter, or a decimal comma in a comma-separated file?)",
                          file=path, row=scan.overfull_line)
-    ts_cols = list(stream.timestamp_column)
+    ts_cols = _ts_columns(stream)
     numeric_cols = list(dict.fromkeys([c for cols in stream.columns.values() for c in cols]
                                       + [f.column for f in stream.flags.values()]))
     pass_cols = [c for c in stream.source_columns() if c not in numeric_cols]
@@ -637,6 +653,13 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             values, bad = _to_float(chunk[col], stream.decimal)
             if bad.any():
                 first = int(np.argmax(bad))
+                if stream.decimal == ".":
+                    held = chunk[col][bad].astype(str)
+                    comma = held.str.fullmatch(_DECIMAL_COMMA).to_numpy()
+                    if comma.mean() > 0.5:
+                        at = int(np.flatnonzero(bad)[int(np.argmax(comma))])
+                        raise InputError(f"values such as {_short(chunk[col].iloc[at])} use a decimal comma: "
+                                         "declare input.decimal = \",\"", file=path, row=int(lines[at]), column=col)
                 entry = bad_cells.setdefault(col, [0, int(lines[first]), _short(chunk[col].iloc[first])])
                 entry[0] += int(bad.sum())
             if sentinels.size:
@@ -700,6 +723,13 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             raise InputError("cannot infer the averaging interval from a single stamp: set input.interval_minutes",
                              file=path)
         interval = pd.Timedelta(np.median(steps)).round("1min")
+    unique = np.unique(stamps.to_numpy())
+    if unique.size >= 4:
+        smallest = pd.Timedelta(np.diff(unique).min())
+        if smallest > interval:
+            raise InputError(f"consecutive stamps are at least {smallest} apart, but the stream's interval is "
+                             f"{interval}: a file of another averaging interval (check input.interval_minutes)",
+                             file=path)
     warnings_ += _dst_warnings(path, stamps, lines, interval)
 
     # interval starts in local standard time, snapped to the grid
@@ -776,7 +806,7 @@ def _stream_interval(stream: StreamConfig, raw: pd.DataFrame | None) -> pd.Timed
 
 
 def _aggregate(codes: np.ndarray, values: np.ndarray, reject: np.ndarray, kind: str,
-               n_sub: int, counts: np.ndarray | None = None) -> dict[int, tuple]:
+               n_sub: int, counts: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Aggregate stream values to site-interval codes.
 
     Returns ``{"codes", "value", "instrument", "incomplete", "count"}`` arrays over the unique codes.
@@ -856,8 +886,6 @@ def build_working_frame(raw_by_stream: dict, cfg: SiteConfig, *, ingested=()) ->
     InputError
         No data at all.
     """
-    from . import history  # written alongside; imported late so ingest loads without it
-
     site = cfg.site
     streams = {s.name: s for s in cfg.inputs}
     for name in raw_by_stream:

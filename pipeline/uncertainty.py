@@ -18,6 +18,14 @@ Entry point: :func:`assess_uncertainty` (after the closure and filling stages). 
    stage; Wilson et al. 2002: the unclosed balance moves ET by far more than the random
    band).
 
+In the site job it runs after the filling stage (``pipeline.process``)::
+
+    result = assess_uncertainty(state.frame, state.flags, state.site, state.rules,
+                                filling=state.columns["filling"], fill_summary=state.summary,
+                                closure=state.columns.get("closure"))
+
+``result.summary["totals"]`` (a list of records) is the table of ``totals.parquet``.
+
 Pairing rule (:func:`pair_mask`)
 --------------------------------
 Interval i is paired with i + 24 h when
@@ -44,20 +52,28 @@ Estimator of the error from the pair differences
 ------------------------------------------------
 With δ = x1 − x2 = ε1 − ε2 and ε1, ε2 independent Laplace (double-exponential) errors of
 scale β (sd σ = √2·β; Hollinger and Richardson 2005 found the errors Laplace-distributed),
-the density of δ is (1/4β)(1 + |δ|/β)·exp(−|δ|/β), so E|δ| = 1.5·β = (3/(2√2))·σ
-(derived here). Hence σ = (2√2/3)·mean|δ| ≈ 0.943·mean|δ|. The shortcut
-β ≈ mean|δ|/√2 (σ ≈ mean|δ|) treats δ/√2 as Laplace and overstates σ by 6 %; the
-Gaussian relation σ = sd(δ)/√2 weighs outliers (surviving spikes) far more. Because
-E|δ| is linear in σ, the model sd = a + b·|m| (m = (x1 + x2)/2) is fitted directly to
-the pairs: |δ_i| = (3/(2√2))·(a + b·|m_i|) + noise, by non-negative weighted least
-squares with weights 1/(a + b|m_i|)² (two reweighting passes). With ``fit_by_sign`` true,
-positive and negative fluxes get their own (a, b) when each side has ``min_pairs_by_sign``
-pairs; both are always reported. Fewer than ``min_pairs`` pairs: no model (warning).
+the density of δ is (1/4β)(1 + |δ|/β)·exp(−|δ|/β) (derived here), so
+
+- E|δ| = 1.5·β = (3/(2√2))·σ, i.e. σ = (2√2/3)·mean|δ| ≈ 0.943·mean|δ|;
+- P(|δ| > y) = (1 + y/(2β))·exp(−y/β), whose median is 1.1462·β, i.e.
+  σ = median|δ| / 0.8105.
+
+(The shortcut β ≈ mean|δ|/√2, σ ≈ mean|δ|, treats δ/√2 as Laplace and overstates σ by
+6 %; the Gaussian σ = sd(δ)/√2 weighs outliers far more.) The pairs are binned by the
+magnitude of their mean, |m| = |x1 + x2|/2 (quantile bins of about 50 pairs, 5 to 20
+bins); each bin's σ comes from the MEDIAN |δ|: pairs whose true fluxes differ (the
+conditions are only similar: dew, soil drying, morning transitions) form a heavy tail that
+inflated the mean-based σ by about 20 % on invented records and hardly moves the median.
+Then sd = a + b·|m| is fitted to the bins by non-negative weighted least squares (weights
+√n/σ). With ``fit_by_sign`` true, positive and negative fluxes get their own (a, b) when
+each side has ``min_pairs_by_sign`` pairs; both are always reported. Fewer than
+``min_pairs`` pairs: no model (warning), and the band leaves the random error out.
 
 Error of the filled values
 --------------------------
 sd_fill = max(``_fill_sd``, cross-validated RMSE of the filling method). For fills of
-reduced quality (``fair`` or ``poor``, or made from filled drivers) the flux's spread at the
+reduced quality (``fair`` or ``poor``, or made from drivers filled by a mean diurnal course,
+a neighbouring site or a mean clearness) the flux's spread at the
 same time of day (±1 interval of clock time, ±``time_of_day_window`` days, accepted values)
 is a third candidate: such a fill knows little more than the mean diurnal course, whose
 error is that spread (Falge et al. 2001's fallback). The cross-validation hides measured
@@ -75,7 +91,13 @@ Monte Carlo assumptions
 - LE and H errors are independent of each other;
 - values not filled (gaps beyond the maximum fill length) contribute nothing: a period with
   such gaps has ``complete`` false and its total understates ET;
-- the closure is not part of the band: it is a systematic error, reported as a bracket.
+- the closure is not part of the band: it is a systematic error, reported as a bracket
+  [ET, ET closed]; ET closed gets its own band from the same draws scaled by the closure
+  factor (``et_closed_mm_p025``, ``et_closed_mm_p975``);
+- fills are assumed unbiased. Fills of rain gaps (open-path analysers) from drier similar
+  conditions miss the evaporation of intercepted water: a one-sided error outside the band.
+  ``filled_after_rain_fraction`` counts such intervals and the summary cautions above
+  ``wet_fill_caution_fraction``.
 Totals are the estimates; the interval is estimate + the 2.5 and 97.5 % quantiles of the
 simulated error sums (``interval_level``).
 
@@ -118,15 +140,44 @@ __all__ = [
     "gap_labels",
     "simulate_errors",
     "assess_uncertainty",
+    "COLUMN_METADATA",
 ]
+
+#: unit and long name of every column this stage adds (intervals, daily, totals)
+COLUMN_METADATA: dict[str, dict[str, str]] = {
+    "le_random_sd": {"unit": "W m-2", "long_name": "random error sd of measured LE (24-h paired observations; NaN where filled)"},
+    "h_random_sd": {"unit": "W m-2", "long_name": "random error sd of measured H (24-h paired observations; NaN where filled)"},
+    "le_fill_error_sd": {"unit": "W m-2", "long_name": "error sd of filled LE (NaN where measured)"},
+    "h_fill_error_sd": {"unit": "W m-2", "long_name": "error sd of filled H (NaN where measured)"},
+    "le_total_sd": {"unit": "W m-2", "long_name": "error sd of le_filled: random where measured, filling where filled"},
+    "h_total_sd": {"unit": "W m-2", "long_name": "error sd of h_filled: random where measured, filling where filled"},
+    "le_error_gap": {"unit": "1", "long_name": "label of the contiguous run of filled LE (-1 where measured or not filled)"},
+    "et_mm_sd": {"unit": "mm", "long_name": "sd of the day's ET (random and filling errors, Monte Carlo)"},
+    "et_mm_p025": {"unit": "mm", "long_name": "2.5 % quantile of the day's ET (random and filling errors)"},
+    "et_mm_p975": {"unit": "mm", "long_name": "97.5 % quantile of the day's ET (random and filling errors)"},
+    "et_closed_mm": {"unit": "mm", "long_name": "ET from LE closed by the Bowen-ratio correction (closure bracket)"},
+    "et_random_sd_mm": {"unit": "mm", "long_name": "part of et_mm_sd from the random error of measured values"},
+    "et_fill_sd_mm": {"unit": "mm", "long_name": "part of et_mm_sd from the filling error"},
+    "le_energy_mj": {"unit": "MJ m-2", "long_name": "LE energy total from le_filled"},
+    "le_energy_mj_sd": {"unit": "MJ m-2", "long_name": "sd of the LE energy total"},
+    "h_energy_mj": {"unit": "MJ m-2", "long_name": "H energy total from h_filled"},
+    "h_energy_mj_sd": {"unit": "MJ m-2", "long_name": "sd of the H energy total"},
+    "filled_fraction": {"unit": "1", "long_name": "share of the period's intervals with filled LE"},
+    "long_gap_fraction": {"unit": "1", "long_name": "share of the period's intervals in LE gaps beyond the maximum fill length"},
+    "missing_fraction": {"unit": "1", "long_name": "share of the period's intervals without le_filled (the total understates ET)"},
+    "closure_corrected_fraction": {"unit": "1", "long_name": "share of intervals with the closure stage's own factor (else the month's median)"},
+    "et_closed_mm_p025": {"unit": "mm", "long_name": "2.5 % quantile of the closed ET (random and filling errors scaled by the closure factor)"},
+    "et_closed_mm_p975": {"unit": "mm", "long_name": "97.5 % quantile of the closed ET"},
+    "filled_after_rain_fraction": {"unit": "1", "long_name": "share of intervals with filled LE during or within rain_lead after rain or irrigation"},
+}
 
 #: E|ε1 − ε2| / σ for independent Laplace errors of sd σ: 3/(2√2) (derived in the module notes)
 LAPLACE_MEAN_ABS_DIFFERENCE = 3.0 / (2.0 * math.sqrt(2.0))
 
 _FLUXES = ("le", "h")
 _REDUCED_QUALITY = ("fair", "poor")
-_FILLED_DRIVER_METHODS = ("interpolation", "neighbour_site_regression", "mean_diurnal_course",
-                          "mean_clearness")
+#: driver fills that carry little of the interval's own weather (short interpolations do)
+_FILLED_DRIVER_METHODS = ("neighbour_site_regression", "mean_diurnal_course", "mean_clearness")
 
 
 def uncertainty_rules(rules: dict | None) -> dict:
@@ -147,6 +198,13 @@ def _window_any(mask: np.ndarray, lag: int) -> np.ndarray:
     n = mask.size
     i = np.arange(max(n - lag, 0))
     return (c[i + lag + 1] - c[i]) > 0
+
+
+def _within_lead(mask: np.ndarray, lead: int) -> np.ndarray:
+    """True where ``mask`` is true in the interval itself or in the ``lead`` intervals before it."""
+    c = np.concatenate(([0], np.cumsum(np.asarray(mask, dtype=np.int64))))
+    k = np.arange(mask.size)
+    return (c[k + 1] - c[np.maximum(k - int(lead), 0)]) > 0
 
 
 def pair_mask(x, *, lag: int, drivers: dict | None = None, tolerances: dict | None = None,
@@ -467,7 +525,7 @@ def _gap_ar1(z: np.ndarray, filled: np.ndarray, phi: float) -> np.ndarray:
 
 
 def simulate_errors(sd, measured, filled, *, draws: int, seed: int, phi: float,
-                    weights: np.ndarray, groups: list[np.ndarray], chunk_elements: int = 4_000_000):
+                    weights, groups: list[np.ndarray], chunk_elements: int = 4_000_000):
     """Monte Carlo sums of per-interval errors over groups of intervals.
 
     Parameters
@@ -482,7 +540,8 @@ def simulate_errors(sd, measured, filled, *, draws: int, seed: int, phi: float,
     phi : float
         AR(1) coefficient per interval within gaps, 0 ≤ phi ≤ 1.
     weights : array_like
-        Conversion of an error in W m-2 to the summed unit (mm or MJ m-2) per interval.
+        Conversion of an error in W m-2 to the summed unit (mm or MJ m-2) per interval:
+        shape (n,), or (n_weights, n) to sum the same draws with several conversions.
     groups : list of array_like of int
         Each a group label per interval (−1: in no group); the error sums are returned per
         group label 0 … max.
@@ -491,41 +550,55 @@ def simulate_errors(sd, measured, filled, *, draws: int, seed: int, phi: float,
 
     Returns
     -------
-    list of tuple of numpy.ndarray
-        Per grouping: (measured part, filled part), each draws × groups.
+    list
+        Per grouping: (measured part, filled part), each draws × groups. With 2-D
+        ``weights``: one such list per row of ``weights``.
+
+    Notes
+    -----
+    Errors are drawn in blocks of draws × intervals; the group sums are one product of the
+    block with a sparse (interval × group) matrix holding the conversion weights.
     """
+    from scipy import sparse
+
     sd = np.nan_to_num(np.asarray(sd, dtype=float), nan=0.0)
     measured = np.asarray(measured, dtype=bool) & (sd > 0)
     filled = np.asarray(filled, dtype=bool) & (sd > 0) & ~measured
-    weights = np.nan_to_num(np.asarray(weights, dtype=float), nan=0.0)
+    w_all = np.nan_to_num(np.asarray(weights, dtype=float), nan=0.0)
+    single = w_all.ndim == 1
+    w_all = np.atleast_2d(w_all)
     n = sd.size
     rng = np.random.default_rng(int(seed))
     groups = [np.asarray(g, dtype=np.int64) for g in groups]
     n_groups = [int(g.max()) + 1 if g.size and g.max() >= 0 else 0 for g in groups]
-    out = [(np.zeros((draws, k)), np.zeros((draws, k))) for k in n_groups]
     mpos = np.flatnonzero(measured)
     fpos = np.flatnonzero(filled)
+
+    def indicator(pos, g, k, w):
+        keep = g[pos] >= 0
+        rows = np.flatnonzero(keep)
+        return sparse.csr_matrix((w[pos][keep], (g[pos][keep], rows)), shape=(max(k, 1), pos.size))
+
+    mats = [[(indicator(mpos, g, k, w), indicator(fpos, g, k, w)) for g, k in zip(groups, n_groups)]
+            for w in w_all]
+    out = [[(np.zeros((draws, k)), np.zeros((draws, k))) for k in n_groups] for _ in w_all]
     # Laplace scale β = sd/√2 (variance 2β²)
-    m_scale = sd[mpos] / math.sqrt(2.0) * weights[mpos]
-    f_scale = sd[fpos] * weights[fpos]
+    m_scale = sd[mpos] / math.sqrt(2.0)
+    f_scale = sd[fpos]
     step = max(1, int(chunk_elements // max(n, 1)))
     for d0 in range(0, draws, step):
         d1 = min(draws, d0 + step)
         nd = d1 - d0
         em = rng.laplace(0.0, 1.0, (nd, mpos.size)) * m_scale[None, :]
         ef = _gap_ar1(rng.standard_normal((nd, fpos.size)), filled, phi) * f_scale[None, :]
-        for g, k, (om, of) in zip(groups, n_groups, out):
-            if k == 0:
-                continue
-            for pos, e, o in ((mpos, em, om), (fpos, ef, of)):
-                lab = g[pos]
-                keep = lab >= 0
-                if not keep.any():
+        em_t, ef_t = np.ascontiguousarray(em.T), np.ascontiguousarray(ef.T)  # intervals × draws
+        for per_w, mats_w in zip(out, mats):
+            for (om, of), (mm, mf), k in zip(per_w, mats_w, n_groups):
+                if k == 0:
                     continue
-                # sums per group: one matrix product with a sparse-free indicator via bincount
-                flat = (np.arange(nd)[:, None] * k + lab[keep][None, :]).ravel()
-                o[d0:d1] += np.bincount(flat, weights=e[:, keep].ravel(), minlength=nd * k).reshape(nd, k)
-    return out
+                om[d0:d1] = (mm @ em_t).T[:, :k]
+                of[d0:d1] = (mf @ ef_t).T[:, :k]
+    return out[0] if single else out
 
 
 # ---------------------------------------------------------------------------------------
@@ -636,25 +709,27 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
             _warn(f"uncertainty: no {name}: the pairing rule drops its tolerance")
             continue
         drivers[name], tolerances[name] = v, float(tol)
-    blocked = np.zeros(n, dtype=bool)
+    # rain (or unknown precip) and irrigation stop pairs from `rain_lead` before to the end
+    lead = int(round(duration(u["rain_lead"]) / interval))
+    rain_above = float(wet_rules.get("rain_above", 0.0))
+    irrigated = frame["irrigated"].fillna(False).to_numpy(dtype=bool) if "irrigated" in frame.columns \
+        else np.zeros(n, dtype=bool)
     if "precip" in frame.columns:
         p = _accepted(frame, flags, "precip")
         with np.errstate(invalid="ignore"):
-            blocked |= ~(p <= float(wet_rules.get("rain_above", 0.0)))  # rain or unknown
+            rain_or_unknown = ~(p <= rain_above)
+            rain_known = p > rain_above
     else:
         _warn("uncertainty: no precip: pairs across rain cannot be excluded")
-    if "irrigated" in frame.columns:
-        blocked |= frame["irrigated"].fillna(False).to_numpy(dtype=bool)
-    lead = int(round(duration(u["rain_lead"]) / interval))
-    if lead > 0:  # a wet canopy outlasts the rain: the pair's window starts `lead` earlier
-        c = np.concatenate(([0], np.cumsum(blocked.astype(np.int64))))
-        k = np.arange(n)
-        blocked = (c[k + 1] - c[np.maximum(k - lead, 0)]) > 0
+        rain_or_unknown = rain_known = np.zeros(n, dtype=bool)
+    blocked = _within_lead(rain_or_unknown | irrigated, lead)
+    # filled values during or within `rain_lead` after known rain or irrigation (caution)
+    wet_after = _within_lead(rain_known | irrigated, lead)
     if len(flags.columns):
         hist = (flags.to_numpy() & flagbits.HISTORY).any(axis=1)
         blocked |= hist
-    same = {c: frame[c].to_numpy() for c in ("canopy_height_m", "measurement_height_m", "irga")
-            if c in frame.columns}
+    same = {name: frame[name].to_numpy() for name in ("canopy_height_m", "measurement_height_m", "irga")
+            if name in frame.columns}
 
     # ---- random error per flux ------------------------------------------------------------
     models = {}
@@ -726,18 +801,24 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
     seed = int(u["seed"])
     groups = [day_codes, month_codes, year_codes, record]
     mc = {}
-    for name, flux, w in (("et", "le", mm_per_w), ("le_energy", "le", mj_per_w), ("h_energy", "h", mj_per_w)):
-        mc[name] = simulate_errors(cols[f"{flux}_total_sd"], measured[flux], filled_mask[flux],
-                                   draws=draws, seed=seed + (0 if flux == "le" else 1), phi=phi,
-                                   weights=w, groups=groups)
-
-    if closure is not None and len(closure):
+    le_weights = [mm_per_w, mj_per_w]
+    closed = closure is not None and len(closure)
+    if closed:
         factor, direct = _closure_factor_everywhere(closure.reindex(index), frozen, month_codes)
         le_closed_all = le_f * factor
+        # the closed ET carries the same errors scaled by the factor (the same draws)
+        le_weights.append(mm_per_w * np.nan_to_num(factor, nan=1.0))
     else:
         factor = np.full(n, np.nan)
         direct = np.zeros(n, dtype=bool)
         le_closed_all = np.full(n, np.nan)
+    le_mc = simulate_errors(cols["le_total_sd"], measured["le"], filled_mask["le"], draws=draws, seed=seed,
+                            phi=phi, weights=np.vstack(le_weights), groups=groups)
+    mc["et"], mc["le_energy"] = le_mc[0], le_mc[1]
+    if closed:
+        mc["et_closed"] = le_mc[2]
+    mc["h_energy"] = simulate_errors(cols["h_total_sd"], measured["h"], filled_mask["h"], draws=draws,
+                                     seed=seed + 1, phi=phi, weights=mj_per_w, groups=groups)
 
     q_lo, q_hi = (1.0 - level) / 2.0, 1.0 - (1.0 - level) / 2.0
     in_long = filling["le_in_long_gap"].to_numpy(dtype=bool) if "le_in_long_gap" in filling else \
@@ -762,6 +843,8 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
             "long_gap_fraction": np.bincount(codes, weights=in_long.astype(float), minlength=k) / cnt,
             "missing_fraction": 1.0 - present / cnt,
             "closure_corrected_fraction": np.bincount(codes, weights=direct.astype(float), minlength=k) / cnt,
+            "filled_after_rain_fraction": np.bincount(codes, weights=(filled_mask["le"] & wet_after).astype(float),
+                                                      minlength=k) / cnt,
         }
         return res
 
@@ -789,6 +872,10 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
              ("record", record, np.array(["record"]))], start=1):
         t = table(codes, len(values))
         sd, lo, hi, sd_m, sd_f = mc_stats(mc["et"], which)
+        if "et_closed" in mc:
+            _, lo_c, hi_c, _, _ = mc_stats(mc["et_closed"], which)
+        else:
+            lo_c = hi_c = np.full(len(values), np.nan)
         le_sd = mc_stats(mc["le_energy"], which)[0]
         h_sd = mc_stats(mc["h_energy"], which)[0]
         first = pd.Series(local).groupby(codes).min().to_numpy()
@@ -808,10 +895,13 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
                 "et_random_sd_mm": _num(sd_m[k]),
                 "et_fill_sd_mm": _num(sd_f[k]),
                 "et_closed_mm": _num(t["et_closed_mm"][k]),
+                "et_closed_mm_p025": _num(t["et_closed_mm"][k] + lo_c[k]),
+                "et_closed_mm_p975": _num(t["et_closed_mm"][k] + hi_c[k]),
                 "filled_fraction": _num(t["filled_fraction"][k]),
                 "long_gap_fraction": _num(t["long_gap_fraction"][k]),
                 "missing_fraction": _num(t["missing_fraction"][k]),
                 "closure_corrected_fraction": _num(t["closure_corrected_fraction"][k]),
+                "filled_after_rain_fraction": _num(t["filled_after_rain_fraction"][k]),
                 "le_energy_mj": _num(t["le_energy_mj"][k]),
                 "le_energy_mj_sd": _num(le_sd[k]),
                 "h_energy_mj": _num(t["h_energy_mj"][k]),
@@ -836,6 +926,11 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
                    f"is ±{band:.1f} mm ({bpct:.1f} %), while closing the energy balance moves ET by "
                    f"{bracket:+.1f} mm ({pct:.1f} %) to {whole['et_closed_mm']:.1f} mm: {dominant} "
                    "dominates (Wilson et al. 2002).")
+    wet_share = whole["filled_after_rain_fraction"] or 0.0
+    if wet_share > float(u["wet_fill_caution_fraction"]):
+        verdict += (f" Caution: {wet_share:.0%} of the intervals are filled during or within "
+                    f"{u['rain_lead']} after rain; fills from drier similar conditions can miss "
+                    "the evaporation of intercepted water, a one-sided error the band does not cover.")
     summary = {
         "uncertainty": {
             "random_error": {flux: models[flux] for flux in _FLUXES},

@@ -190,7 +190,7 @@ def unit_of(out: SiteOutputs, column: str, default: str = "") -> str:
     """Unit of a column: the parquet field metadata, else the canonical unit, else ``default``."""
     if column in out.units:
         return out.units[column]
-    from pipeline.config import CANONICAL_UNITS
+    from pipeline.outputs import CANONICAL_UNITS  # the canonical units, re-exported with the metadata
 
     return CANONICAL_UNITS.get(column, default)
 
@@ -218,8 +218,8 @@ def primary_reason(flags: np.ndarray) -> np.ndarray:
     return out
 
 
-def history_periods(out: SiteOutputs) -> list[tuple[pd.Timestamp, pd.Timestamp, str]]:
-    """Site-history periods from ``summary.json`` as (start, end, short label), naive local time."""
+def history_periods(out: SiteOutputs) -> list[tuple[pd.Timestamp, pd.Timestamp, str, str]]:
+    """Site-history periods from ``summary.json`` as (start, end, short label, kind), naive local time."""
     periods = []
     for i, entry in enumerate(out.summary.get("history") or []):
         if not isinstance(entry, dict):
@@ -238,15 +238,26 @@ def history_periods(out: SiteOutputs) -> list[tuple[pd.Timestamp, pd.Timestamp, 
         elif end.tzinfo is not None:
             end = end.tz_localize(None)
         number = entry.get("entry", i)
-        periods.append((start, end, f"#{number}"))
+        periods.append((start, end, f"#{number}", str(entry.get("kind") or "")))
     return periods
 
 
+#: history kinds drawn as a thin band at the top of time axes instead of a full-height shade
+BAND_KINDS = ("irrigation",)
+#: history kinds listed on the overview page only (they change parameters, not data)
+LISTED_ONLY_KINDS = ("site parameters",)
+
+
 def history_lines(out: SiteOutputs) -> list[str]:
-    """One line of text per site-history period (for the overview page's legend of #numbers)."""
+    """One line per correction or exclusion (the #numbers on time axes); other kinds summarised."""
     lines = []
+    grouped: dict[str, list[dict]] = {}
     for i, entry in enumerate(out.summary.get("history") or []):
         if not isinstance(entry, dict):
+            continue
+        kind = str(entry.get("kind") or "")
+        if kind in BAND_KINDS or kind in LISTED_ONLY_KINDS:
+            grouped.setdefault(kind, []).append(entry)
             continue
         number = entry.get("entry", i)
         what = entry.get("detail") or entry.get("kind") or ""
@@ -259,4 +270,11 @@ def history_lines(out: SiteOutputs) -> list[str]:
         if entry.get("reason"):
             text += f" - {entry['reason']}"
         lines.append(text)
+    for kind, entries in grouped.items():
+        variables = sorted({str(e.get("variables") or e.get("detail") or "") for e in entries} - {""})
+        first = _short_time(entries[0].get("start"))[:10]
+        last = _short_time(entries[-1].get("end") or entries[-1].get("start"))[:10]
+        how = "thin band on top of time axes" if kind in BAND_KINDS else "not drawn on time axes"
+        lines.append(f"{len(entries)} {kind} period(s), {first} to {last}"
+                     + (f" ({', '.join(variables)})" if variables else "") + f" - {how}")
     return lines

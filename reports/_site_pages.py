@@ -25,8 +25,8 @@ from ._data import (VARIABLE_ORDER, SiteOutputs, accepted_values, fmt, get, hist
 CAUTION = ("Filled values are estimates; use for water accounting or irrigation follows local rules "
            "and licensed practice.")
 
-#: latent heat of vaporisation used only to label ET on the report's daily panels comes from
-#: daily.parquet (et_mm); the report computes no physics of its own.
+# The report computes no physics of its own: ET, EBR, gs and omega come from the outputs;
+# the only conversions are unit scalings for display (m s-1 -> mm s-1, W m-2 x s -> MJ m-2).
 
 
 @dataclass
@@ -77,11 +77,11 @@ def _date_axis(ax) -> None:
     ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
 
 
-def _time_axis_common(ctx: Context, ax, *, history_labels: bool = True) -> None:
+def _time_axis_common(ctx: Context, ax, *, history_labels: bool = True, outline: bool = False) -> None:
     _date_axis(ax)
     if ctx.time is not None and len(ctx.time):
         ax.set_xlim(ctx.time.iloc[0], ctx.time.iloc[-1] + ctx.out.interval)
-    style.shade_history(ax, ctx.history, label=history_labels)
+    style.shade_history(ax, ctx.history, label=history_labels, outline=outline)
 
 
 def _text_block(ax, lines: list[str], *, size: float = 8.0, width: int = 95, max_lines: int = 60,
@@ -164,8 +164,8 @@ def _coverage_and_reasons(ctx: Context) -> tuple[list[str], list[str], list[list
 
 _REASON_HEADERS = {
     "missing": "missing", "out_of_range": "out of\nrange", "spike": "spike", "instrument_flag": "instrument\nflag",
-    "wet": "wet", "low_turbulence": "low tur-\nbulence", "history_exclusion": "history\nexclusion",
-    "inconsistent": "incon-\nsistent", "flat_line": "flat\nline", "excluded_sector": "excluded\nsector",
+    "wet": "wet", "low_turbulence": "low turbulence", "history_exclusion": "history\nexclusion",
+    "inconsistent": "inconsistent", "flat_line": "flat\nline", "excluded_sector": "excluded\nsector",
     "snow_or_frozen": "snow or\nfrozen", "suspect_clock": "suspect\nclock",
 }
 
@@ -265,7 +265,7 @@ def page_overview(ctx: Context) -> Figure:
     lines += ["", "LOGGER CLOCK (against solar time on clear days)"]
     if offsets:
         lines.append(f"  median offset {np.median(offsets):+.1f} min over {len(offsets)} clear days; "
-                     f"steps: {len(clock.get('steps') or [])}; drift "
+                     f"steps: {len(clock.get('steps') or [])}; drift " +
                      (f"{fmt(clock.get('drift_minutes_per_week'), '+.1f')} min/week"
                       if not math.isnan(num(clock.get("drift_minutes_per_week"))) else "none detected"))
     else:
@@ -307,7 +307,7 @@ def page_health(ctx: Context) -> Figure:
     fig = _page(ctx, "Sensor health: what to check at the next visit")
     health = ctx.out.summary.get("health") or {}
     findings = [f for f in (health.get("findings") or []) if isinstance(f, dict)]
-    ax = fig.add_axes([0.035, 0.47, 0.93, 0.43])
+    ax = fig.add_axes([0.035, 0.44, 0.93, 0.46])
     if not findings:
         style.note(ax, "No health diagnostics in summary.json.")
     else:
@@ -358,7 +358,7 @@ def page_health(ctx: Context) -> Figure:
     ]
     starts = pd.to_datetime([w.get("start") for w in weeks], errors="coerce") if weeks else None
     for i, (key, title, ylab) in enumerate(panels):
-        ax = fig.add_axes([0.06 + i * 0.235, 0.09, 0.18, 0.28])
+        ax = fig.add_axes([0.06 + i * 0.235, 0.08, 0.18, 0.30])
         vals = np.array([num(w.get(key)) for w in weeks]) if weeks else np.array([])
         if not weeks or not np.isfinite(vals).any():
             style.note(ax, f"{title}:\nno weekly value")
@@ -371,7 +371,7 @@ def page_health(ctx: Context) -> Figure:
             ax.axhline(1.0, color="#777777", linewidth=0.8, linestyle="--")
         ax.set_title(title)
         ax.set_ylabel(ylab)
-        ax.set_xlabel("week starting (local standard time)")
+        ax.set_xlabel("week start", loc="left")
         _date_axis(ax)
     return fig
 
@@ -406,15 +406,15 @@ def page_availability(ctx: Context) -> Figure:
     ax.set_yticks(range(len(variables)))
     ax.set_yticklabels([label(v) if not v.endswith("_filled") else f"{label(v[:-7])} filled" for v in variables])
     ax.grid(False)
-    _time_axis_common(ctx, ax)
+    _time_axis_common(ctx, ax, outline=True)
     ax.set_xlabel("date (local standard time)")
     ax.set_ylabel("variable")
     ax.set_title("Share of each day's intervals with an accepted value (filled series: with any value)")
     cax = fig.add_axes([0.915, 0.20, 0.012, 0.70])
     cb = fig.colorbar(im, cax=cax)
     cb.set_label("share of the day's intervals (-)")
-    fig.text(0.10, 0.10, "Dark = no accepted value that day; white = outside the record. Grey bands: "
-             "site-history periods (numbers as on the overview page).", fontsize=7.5, color="#444444")
+    fig.text(0.10, 0.10, "Dark = no accepted value that day; white = outside the record. Dashed frames: corrections and "
+             "exclusions of the site history (numbers as on the overview page); blue band on top: irrigation.", fontsize=7.5, color="#444444")
     return fig
 
 
@@ -426,7 +426,7 @@ def page_heatmaps(ctx: Context) -> Figure:
     rows = (("le", "Latent heat flux LE"), ("h", "Sensible heat flux H"))
     stages = ("as ingested (before QC)", "accepted (after QC)", "gap-filled")
     for r, (var, name) in enumerate(rows):
-        axes = [fig.add_axes([0.06 + c * 0.295, 0.54 - r * 0.45, 0.265, 0.34]) for c in range(3)]
+        axes = [fig.add_axes([0.06 + c * 0.295, 0.56 - r * 0.43, 0.265, 0.32]) for c in range(3)]
         if frame is None or var not in frame.columns:
             for ax in axes:
                 style.note(ax, f"No {label(var)} in intervals.parquet.")
@@ -448,17 +448,18 @@ def page_heatmaps(ctx: Context) -> Figure:
                            cmap=cmap, vmin=limits[0], vmax=limits[1], extent=[x0, x1, 0, 24])
             ax.grid(False)
             _date_axis(ax)
+            style.shade_history(ax, ctx.history, label=False, outline=True)
             ax.set_yticks([0, 6, 12, 18, 24])
             ax.set_title(f"{name}, {stages[c]}", fontsize=8.5)
             ax.set_ylabel("time of day (h, local standard time)" if c == 0 else "")
-            ax.set_xlabel("date")
         if im is not None:
-            cax = fig.add_axes([0.945, 0.54 - r * 0.45, 0.01, 0.34])
+            cax = fig.add_axes([0.945, 0.56 - r * 0.43, 0.01, 0.32])
             cb = fig.colorbar(im, cax=cax, extend="both")
             cb.set_label(_axis_label(ctx, var))
-    fig.text(0.06, 0.035, "White: no value. Colour scale: 1st to 99th percentile of the accepted values, "
-             "shared by the three panels of a row; values beyond it are shown at the end colours.",
-             fontsize=7.5, color="#444444")
+    fig.text(0.06, 0.045, "Dates and times in local standard time. White: no value. Dashed frames: site-history "
+             "corrections and exclusions.\nColour scale: 1st to 99th percentile of the accepted values, shared by "
+             "the three panels of a row; values beyond it are shown at the end colours.",
+             fontsize=7.5, color="#444444", va="bottom")
     return fig
 
 
@@ -495,14 +496,14 @@ def page_timeseries(ctx: Context) -> Figure:
     fig = _page(ctx, "LE and H with rejected values marked by reason")
     frame = ctx.frame
     for r, (var, name) in enumerate((("le", "Latent heat flux LE"), ("h", "Sensible heat flux H"))):
-        ax = fig.add_axes([0.06, 0.54 - r * 0.45, 0.74, 0.34])
+        ax = fig.add_axes([0.06, 0.57 - r * 0.44, 0.74, 0.31])
         if frame is None or var not in frame.columns:
             style.note(ax, f"No {label(var)} in intervals.parquet.")
             continue
         _reason_scatter(ctx, ax, var)
         ax.set_title(f"{name}: accepted values (line) and rejected values (markers, first reason)")
         ax.set_xlabel("date (local standard time)")
-    fig.text(0.06, 0.035, "A value rejected for several reasons is marked by the first in the flag-bit order "
+    fig.text(0.06, 0.045, "A value rejected for several reasons is marked by the first in the flag-bit order "
              "(pipeline/flags.py); the overview page counts every reason. The y-axis spans the 0.2nd to 99.8th "
              "percentile of the ingested values.", fontsize=7.5, color="#444444")
     return fig
@@ -565,16 +566,17 @@ def page_closure(ctx: Context) -> Figure:
         overall = num(get(s, "closure", "ebr"))
         if not math.isnan(overall):
             ax2.axhline(overall, color=style.ROLE["fit"], linewidth=0.8, label=f"whole period {overall:.2f}")
-        lim = _robust_limits(ebr, lo=2, hi=98)
-        if lim:
-            ax2.set_ylim(min(lim[0], 0.5) - 0.05, max(lim[1], 1.1) + 0.05)
+        finite = ebr[np.isfinite(ebr)]
+        if finite.size:  # every day visible, within a sane window (a near-zero denominator can explode)
+            ax2.set_ylim(max(-0.5, min(float(finite.min()), 0.5)) - 0.05, min(2.5, max(float(finite.max()), 1.1)) + 0.05)
         _time_axis_common(ctx, ax2)
         ax2.set_ylabel("EBR (-)")
         ax2.set_xlabel("date (local standard time)")
-        ax2.legend(loc="lower left", ncol=3)
-    ax2.set_title("Daily energy-balance ratio Σ(H + LE) / Σ(Rn − G)")
+        ax2.legend(loc="upper left", bbox_to_anchor=(0.0, -0.2), ncol=2)
+    no_g = frame is None or "g" not in frame.columns
+    ax2.set_title("Daily energy-balance ratio Σ(H + LE) / Σ(Rn − G)" + (" (no G: Rn only)" if no_g else ""))
     # monthly closure
-    ax3 = fig.add_axes([0.52, 0.12, 0.44, 0.30])
+    ax3 = fig.add_axes([0.52, 0.09, 0.44, 0.27])
     monthly = [m for m in (s.get("closure_monthly") or []) if isinstance(m, dict)]
     if not monthly:
         style.note(ax3, "No monthly closure statistics in summary.json.")
@@ -584,12 +586,15 @@ def page_closure(ctx: Context) -> Figure:
         ax3.bar(pos - 0.2, [num(m.get("ebr")) for m in monthly], width=0.4, color=style.ROLE["ebr"], label="EBR")
         ax3.bar(pos + 0.2, [num(m.get("slope")) for m in monthly], width=0.4, color=style.OKABE_ITO["sky_blue"],
                 label="OLS slope")
-        ax3.axhline(1.0, color=style.ROLE["one_to_one"], linestyle="--", linewidth=0.8)
+        ax3.axhline(1.0, color=style.ROLE["one_to_one"], linestyle="--", linewidth=0.8, label="full closure")
         ax3.set_xticks(pos)
         ax3.set_xticklabels(months, rotation=0 if len(months) <= 8 else 45)
         ax3.set_ylabel("ratio (-)")
         ax3.set_xlabel("month")
-        ax3.legend(loc="lower left", ncol=2)
+        tops = [num(m.get(k)) for m in monthly for k in ("ebr", "slope")]
+        tops = [t for t in tops if not math.isnan(t)]
+        ax3.set_ylim(0, max([1.3] + [t + 0.3 for t in tops]))
+        ax3.legend(loc="upper right", ncol=3)
     ax3.set_title("Closure by month (a trend points to a drifting sensor)")
     return fig
 
@@ -672,7 +677,7 @@ def page_fill(ctx: Context) -> Figure:
         axq.set_ylim(0, 1)
         axq.set_ylabel("share of the week's intervals (-)")
         axq.set_xlabel("week (local standard time)")
-        _time_axis_common(ctx, axq, history_labels=False)
+        _time_axis_common(ctx, axq, history_labels=False, outline=True)
         axq.set_title(f"{label(var)}: measured and filled values by quality class")
         axq.legend(loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=5, fontsize=7)
     return fig
@@ -854,7 +859,7 @@ def page_drivers(ctx: Context) -> Figure:
         _step_fill(ax, days, rg, pd.Timedelta(days=1), color=style.OKABE_ITO["orange"])
         ax.set_ylabel("Rg daily total (MJ m-2 d-1)")
         ax.set_title("Global radiation (days with >= 80 % accepted)")
-        _time_axis_common(ctx, ax, history_labels=False)
+        _time_axis_common(ctx, ax, history_labels=False, outline=True)
         ax.set_xlabel("date (local standard time)")
     # 2 air temperature and VPD
     ax = axes[1]
@@ -889,7 +894,7 @@ def page_drivers(ctx: Context) -> Figure:
                    color=style.OKABE_ITO["sky_blue"])
         ax.set_ylabel("precipitation (mm d-1)")
         ax.set_title("Precipitation (days with >= 80 % accepted)")
-        _time_axis_common(ctx, ax, history_labels=False)
+        _time_axis_common(ctx, ax, history_labels=False, outline=True)
         ax.set_xlabel("date (local standard time)")
     # 4 ET
     ax = axes[3]
@@ -904,7 +909,7 @@ def page_drivers(ctx: Context) -> Figure:
                     label="reference ET (FAO-56)")
         ax.set_ylabel("evapotranspiration (mm d-1)")
         ax.set_title("Daily evapotranspiration (estimate: includes filled values)")
-        _time_axis_common(ctx, ax, history_labels=False)
+        _time_axis_common(ctx, ax, history_labels=False, outline=True)
         ax.set_xlabel("date (local standard time)")
         ax.legend(loc="upper left")
     return fig

@@ -221,6 +221,9 @@ def _multiples_page(rows: list[SiteRow], page_index: int, n_pages: int, header: 
         xlim = (lo, hi)
     n = SITES_PER_PAGE
     h = 0.80 / n
+    et_max = [np.nanmax(r.daily["et_mm"].to_numpy(dtype=float, na_value=np.nan)) for r in rows
+              if r.daily is not None and "et_mm" in r.daily.columns and r.daily["et_mm"].notna().any()]
+    et_top = max(et_max) * 1.05 if et_max and max(et_max) > 0 else None
     for i, row in enumerate(rows):
         top = 0.905 - i * h
         ax_e = fig.add_axes([0.215, top - h + 0.035, 0.34, h - 0.05])
@@ -246,7 +249,7 @@ def _multiples_page(rows: list[SiteRow], page_index: int, n_pages: int, header: 
                 x = mdates.date2num(pd.DatetimeIndex(daily["date"]))
                 ax.fill_between(np.append(x, x[-1] + 1), 0, np.append(values, values[-1]), step="post",
                                 color=colour, linewidth=0)
-                ax.set_ylim(bottom=0)
+                ax.set_ylim(0, et_top)  # one ET scale for every site on the page, to compare them
             if xlim:
                 ax.set_xlim(*xlim)
             locator = mdates.AutoDateLocator(minticks=3, maxticks=7)
@@ -288,7 +291,7 @@ def write_network_report(out_dir: Path, *, network_name: str) -> Path:
     if "site" not in table.columns:
         table = pd.DataFrame(columns=["site", "status", "error"])
     summaries, dailies = {}, {}
-    for site, status in zip(table["site"].astype(str), table.get("status", pd.Series([""] * len(table)))):
+    for site in table["site"].astype(str):
         summaries[site], dailies[site] = _read_site(out_dir, site)
     rows = rank_sites(table, summaries)
     for row in rows:

@@ -117,7 +117,7 @@ _RC = {
     "axes.prop_cycle": matplotlib.cycler(color=[OKABE_ITO[k] for k in (
         "blue", "vermillion", "bluish_green", "orange", "reddish_purple", "sky_blue", "black", "yellow")]),
     "figure.dpi": 100,
-    "savefig.dpi": 150,
+    "savefig.dpi": 120,  # rasterized dense scatters: sharp enough on screen and print, quick to encode
     "path.simplify": True,
     "agg.path.chunksize": 10000,
 }
@@ -167,14 +167,29 @@ def note(ax, text: str) -> None:
             bbox={"boxstyle": "round,pad=0.6", "facecolor": "#F4F4F4", "edgecolor": "#BBBBBB"})
 
 
-def shade_history(ax, periods, *, label: bool = True) -> None:
+def shade_history(ax, periods, *, label: bool = True, outline: bool = False) -> None:
     """Shade the site-history periods (corrections, exclusions, changes) on a time axis.
 
-    ``periods`` is a list of ``(start, end, label_text)`` with tz-naive local timestamps.
+    ``periods`` is a list of ``(start, end, label_text, kind)`` with tz-naive local timestamps.
+    Corrections and exclusions are shaded over the full height and numbered; irrigation is a
+    thin band along the top; site-parameter periods are not drawn (the overview lists them).
     """
-    for i, (start, end, text) in enumerate(periods):
-        ax.axvspan(start, end, color=ROLE["history"], alpha=0.35, linewidth=0, zorder=0,
-                   label="site-history period" if (label and i == 0) else None)
+    shaded = banded = False
+    for start, end, text, kind in periods:
+        if kind == "site parameters":
+            continue
+        if kind == "irrigation":
+            ax.axvspan(start, end, ymin=0.97, ymax=1.0, color=OKABE_ITO["sky_blue"], linewidth=0, zorder=0,
+                       label="irrigation" if (label and not banded) else None)
+            banded = True
+            continue
+        name = "site-history correction or exclusion" if (label and not shaded) else None
+        if outline:  # over an image: a frame, so the colours underneath stay true
+            ax.axvspan(start, end, fill=False, edgecolor="#333333", linewidth=0.9, linestyle="--", zorder=3,
+                       label=name)
+        else:
+            ax.axvspan(start, end, color=ROLE["history"], alpha=0.35, linewidth=0, zorder=0, label=name)
+        shaded = True
         if label and text:
-            ax.text(start, 1.0, f" {text}", transform=ax.get_xaxis_transform(), fontsize=6.5,
+            ax.text(start, 0.965, f" {text}", transform=ax.get_xaxis_transform(), fontsize=6.5,
                     va="top", ha="left", color="#444444", clip_on=True)

@@ -137,3 +137,42 @@ def test_serve_without_server_is_one_line_error(tmp_path, demo, capsys, monkeypa
     assert main(["serve", str(demo), "--cron", "0 6 * * 1", "--out", str(tmp_path / "o")]) == 1
     line = _one_error_line(capsys.readouterr().err)
     assert "prefect server start" in line
+
+
+@pytest.mark.parametrize("cron, tz", [("61 * * * *", "UTC"), ("0 6 * * 1", "Mars/Base")])
+def test_serve_rejects_bad_schedule(tmp_path, demo, capsys, monkeypatch, cron, tz):
+    """A bad cron expression or time zone is one line naming the option; nothing is served.
+
+    PREFECT_API_URL points at a closed port: the schedule is checked before any server call.
+    """
+    import towerflow.cli as cli
+
+    monkeypatch.setenv("PREFECT_API_URL", "http://127.0.0.1:9/api")
+    monkeypatch.setattr(cli, "_quiet_prefect", lambda verbose: None)  # keeps os.environ as it is
+    assert main(["serve", str(demo), "--cron", cron, "--timezone", tz, "--out", str(tmp_path / "o")]) == 1
+    line = _one_error_line(capsys.readouterr().err)
+    assert "--cron" in line and "not a valid schedule" in line
+
+
+def test_run_and_network_with_reports(tmp_path, demo, capsys):
+    """With reports on: the site's qc_report.pdf and the network_report.pdf are written and
+    readable (pypdf), after the data outputs."""
+    from pypdf import PdfReader
+
+    from pipeline.config import load_network_config
+    from towerflow.network import finish_network
+
+    cfg = demo.parent / "sites" / "demo-valley-crop.toml"  # the smallest site (60-min logger)
+    files = sorted(glob.glob(str(demo.parent / "raw" / "demo-valley-crop" / "*.csv")))
+    out = tmp_path / "out"
+    assert main(["run", str(cfg), *files, "--out", str(out)]) == 0
+    pdf = out / "demo-valley-crop" / "qc_report.pdf"
+    assert len(PdfReader(pdf).pages) >= 1
+    network = load_network_config(demo)
+    results = [{"index": 0, "site": "demo-valley-crop", "status": "ok", "error": "", "timings": {}},
+               {"index": 1, "site": "demo-ridge-forest", "status": "failed",
+                "error": "demo-ridge-forest.toml: invented failure for the report", "timings": {}}]
+    finish_network(network, out, results, report=True)
+    assert len(PdfReader(out / "network_report.pdf").pages) >= 1
+    summary = pd.read_csv(out / "network_summary.csv", keep_default_na=False)
+    assert list(summary["status"]) == ["ok", "failed"]

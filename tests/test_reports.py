@@ -203,3 +203,21 @@ def test_network_report_without_summary_table(tmp_path):
     """No network_summary.csv: a one-page report that says so."""
     texts = _pages_text(write_network_report(tmp_path, network_name="Invented empty network"))
     assert len(texts) == 1 and "file missing" in texts[0]
+
+
+def test_dictionary_and_nullable_columns_render(tmp_path):
+    """Dictionary-encoded quality, nullable flags and booleans, a broken summary: notes, no failure."""
+    folder = write_synthetic_site(tmp_path / "invented-types", site="invented-types", days=7)
+    frame = pd.read_parquet(folder / "intervals.parquet")
+    frame["le_fill_quality"] = frame["le_fill_quality"].astype("category")
+    frame["h_flag"] = frame["h_flag"].astype("Int32")
+    frame.loc[frame.index[:5], "h_flag"] = pd.NA
+    frame["gs_valid"] = frame["gs_valid"].astype("boolean")
+    frame.loc[frame.index[:5], "gs_valid"] = pd.NA
+    frame.to_parquet(folder / "intervals.parquet")
+    (folder / "summary.json").write_text("{not json")
+    texts = _pages_text(write_site_report(folder))
+    assert len(texts) == len(PAGE_TITLES)
+    assert all("could not be drawn" not in t for t in texts)
+    assert "summary.json could not be read" in texts[0]
+    assert all("invented-types" in t for t in texts)  # the site id falls back to the folder name

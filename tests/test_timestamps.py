@@ -1,7 +1,12 @@
-"""Timestamps as loggers write them (pipeline.ingest.read_logger_file). All data invented."""
+"""Timestamps as loggers write them (pipeline.ingest.read_logger_file). All data invented.
+
+Expected values follow by hand arithmetic from the invented inputs and the documented rules
+(CONTRACT §2: value = raw * scale + offset, interval starts, fixed UTC offsets; the
+aggregation and snapping rules in the pipeline.ingest module notes, "common practice");
+oracle libraries are named where they are used (pint, scipy, hashlib).
+"""
 from __future__ import annotations
 
-import dataclasses
 import warnings
 
 import numpy as np
@@ -343,3 +348,30 @@ def test_stamps_roundtrip_to_utc_starts(tmp_path, offset, marks, interval, form,
     assert np.array_equal(out.raw.index.asi8, pd.DatetimeIndex(expected).asi8)
     assert np.array_equal(out.raw["LE"].to_numpy(), np.arange(n, dtype=float))
     assert out.raw.index.is_unique and out.raw.index.is_monotonic_increasing
+
+
+def test_whole_file_day_month_swapped(tmp_path):
+    """Every day <= 12 written month-first: each midnight jumps a month; read swapped it is continuous."""
+    stamps = pd.date_range("2025-03-09 00:00", "2025-03-12 23:30", freq="30min")
+    body = "".join(f"{t:%Y-%d-%m %H:%M},{i}\n" for i, t in enumerate(stamps))
+    with pytest.raises(InputError) as info:
+        read(write(tmp_path, "TIMESTAMP,LE\n" + body), make_stream())
+    msg = str(info.value)
+    assert "swapped" in msg and "row 50" in msg and "\n" not in msg
+
+
+def test_sixty_minute_file_in_thirty_minute_stream_is_error(tmp_path):
+    """Hourly stamps throughout in a stream declared 30 min: refused, not read as half-missing."""
+    stamps = pd.date_range("2025-06-01 00:00", periods=24, freq="60min")
+    body = "".join(f"{t:%Y-%m-%d %H:%M},{i}\n" for i, t in enumerate(stamps))
+    with pytest.raises(InputError) as info:
+        read(write(tmp_path, "TIMESTAMP,LE\n" + body), make_stream(interval=30))
+    msg = str(info.value)
+    assert "invented_flux.csv" in msg and "another averaging interval" in msg and "\n" not in msg
+
+
+def test_ten_minute_file_in_thirty_minute_stream_is_off_grid(tmp_path):
+    stamps = pd.date_range("2025-06-01 00:00", periods=6, freq="10min")
+    body = "".join(f"{t:%Y-%m-%d %H:%M},{i}\n" for i, t in enumerate(stamps))
+    with pytest.raises(InputError, match="row 3.*off the"):
+        read(write(tmp_path, "TIMESTAMP,LE\n" + body), make_stream(interval=30))

@@ -119,7 +119,6 @@ def test_stage_pairs_exclude_rain_history_and_rejected_values():
     lag = 24
     lead = int(pd.Timedelta(u["rain_lead"]) / pd.Timedelta(hours=1))
     frame.loc[frame.index[30], "precip"] = 2.0  # rain at step 30
-    flags.loc[frame.index[5], "g" if "g" in flags else "precip"] |= 0  # nothing
     flags["rn"] = np.zeros(len(frame), np.int32)
     flags.loc[frame.index[10], "rn"] = flagbits.HISTORY  # exclusion of another variable at 10
     flags.loc[frame.index[50], "le"] = flagbits.SPIKE  # rejected LE at 50
@@ -294,7 +293,9 @@ def test_stage_daily_sd_hand_case_and_closure_bracket():
     filling.loc[gap, "le_fill_sd"] = 10.0
     fill_summary = {"fill_skill": {"by_method": {"le": {"similar_conditions": {"rmse": 4.0}}}}}
     closure = pd.DataFrame({"closure_factor": np.full(n, 1.25)}, index=frame.index)
-    rules = {"uncertainty": {"min_pairs": 10_000, "draws": 4000, "fill_error_correlation_time": "1000 days"}}
+    frame.loc[frame.index[10], "precip"] = 1.0  # rain 2 h before the gap: within rain_lead (12 h)
+    rules = {"uncertainty": {"min_pairs": 10_000, "draws": 4000, "fill_error_correlation_time": "1000 days",
+                             "wet_fill_caution_fraction": 0.01}}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", TowerflowWarning)
         res = assess_uncertainty(frame, flags, site, rules, filling=filling, fill_summary=fill_summary,
@@ -310,7 +311,11 @@ def test_stage_daily_sd_hand_case_and_closure_bracket():
     assert rec["et_closed_mm"] == pytest.approx(1.25 * rec["et_mm"])
     assert rec["filled_fraction"] == pytest.approx(3 / n)
     assert rec["le_energy_mj"] == pytest.approx(n * 100.0 * 3600 / 1e6)
-    assert "closure bracket" in res.summary["uncertainty"]["dominant"]
+    assert rec["et_closed_mm_p975"] - rec["et_closed_mm"] == pytest.approx(
+        1.25 * (rec["et_mm_p975"] - rec["et_mm"]), rel=1e-9)  # same draws scaled by the factor
+    assert rec["filled_after_rain_fraction"] == pytest.approx(3 / n)
+    text = res.summary["uncertainty"]["dominant"]
+    assert "closure bracket" in text and "intercepted water" in text
     np.testing.assert_allclose(res.columns.loc[gap, "le_total_sd"], 10.0)
     assert res.columns["le_random_sd"].isna().all()
     assert any("pairs" in w for w in res.warnings)
@@ -360,3 +365,13 @@ def test_whole_record_interval_covers_truth():
           f"closure bracket contains the closed truth {res['bracket_coverage']:.0%}")
     assert res["coverage"] >= 0.9
     assert res["median_width_pct"] < 20.0  # not absurdly wide (common practice: a few %)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="known: the open-path forest's rain gaps are filled from drier "
+                   "conditions, missing interception evaporation (a one-sided filling bias, about -20 % of "
+                   "ET on invented records) that the random and filling band does not cover")
+def test_forest_with_rain_gaps_is_covered():
+    """Documents the limit: coverage on the invented open-path conifer forest (5 records)."""
+    res = _bench().coverage("conifer-forest", seeds=range(5), days=120)
+    assert res["coverage"] >= 0.9

@@ -6,8 +6,11 @@ runs. Order of work, so that a failure leaves the store and earlier outputs as t
 1. load and validate the configuration and the rule set;
 2. parse every new file (a broken file stops the run before anything is written);
 3. merge the files into the store *in memory* and process the merged data;
-4. commit the store (atomic), then write the outputs (each file atomically; the
-   summary, written last, names the run, so a reader can tell a complete set);
+4. write every output completely into a staging folder; then, holding the store's lock,
+   commit the store (atomic: one manifest switch) and rename the staged outputs into place
+   (each file atomically; every output names the run, so a reader can tell a complete set).
+   A failure before the renames changes nothing; a crash during the renames (no data
+   written then) leaves each output complete, old or new, and the next run repairs the set;
 5. render the PDF report from the written outputs.
 """
 from __future__ import annotations
@@ -357,6 +360,11 @@ def prepare_site(config_path, files, out_dir, *, supersede: bool = False,
     state = stage_ingest(pending.frames, cfg, rules)
     timings["ingest"] = time.perf_counter() - t0
     state.warnings[:0] = warnings
+    report = state.summary.setdefault("ingest", {})
+    if isinstance(report, dict):  # the non-numeric cells of this run's files, counted per file
+        bad = {str(item.path): int(item.n_bad_cells) for item in ingested}
+        report["bad_cells"] = bad
+        report["n_bad_cells"] = int(sum(bad.values()))
     return PreparedSite(cfg=cfg, rules=rules, site_dir=site_dir, store=store, pending=pending,
                         state=state, ingest_warnings=warnings)
 

@@ -165,11 +165,16 @@ def _equal(stored: np.ndarray, new: np.ndarray) -> np.ndarray:
     return np.array([str(x) == str(y) for x, y in zip(stored, new)], dtype=bool)
 
 
+def _text_or(value, fallback):
+    """``value`` if it is a non-empty text, else ``fallback`` (a missing value may be None or NaN)."""
+    return value if isinstance(value, str) and value else fallback
+
+
 def _clean_objects(frame: pd.DataFrame) -> pd.DataFrame:
     """Object columns as str or None (parquet needs one type per column)."""
     out = frame
-    for col in frame.columns:
-        if frame[col].dtype == object and col not in _PROV:
+    for col, dtype in frame.dtypes.items():
+        if dtype == object and col not in _PROV:
             values = frame[col].to_numpy()
             cleaned = np.array([None if (v is None or (isinstance(v, float) and np.isnan(v))) else
                                 (v if isinstance(v, str) else str(v)) for v in values], dtype=object)
@@ -177,6 +182,101 @@ def _clean_objects(frame: pd.DataFrame) -> pd.DataFrame:
                 out = frame.copy()
             out[col] = cleaned
     return out
+
+
+def _concat_rows(parts: list[pd.DataFrame]) -> pd.DataFrame:
+    """Frames with the same columns and dtypes stacked row-wise, column by column.
+
+    ``pandas.concat`` tests object columns value by value for all-missing blocks (slow for
+    the provenance columns, and it turns NaN into None there); frames that differ in
+    columns or dtypes go through ``pandas.concat``.
+    """
+    first = parts[0]
+    if any(not p.columns.equals(first.columns) or not p.dtypes.equals(first.dtypes) for p in parts[1:]):
+        return pd.concat(parts)
+    index = first.index.append([p.index for p in parts[1:]])
+    data = {}
+    floats = [j for j, dtype in enumerate(first.dtypes) if dtype == np.float64]
+    block = np.concatenate([p.iloc[:, floats].to_numpy() for p in parts]) if floats else None
+    for j, (col, dtype) in enumerate(first.dtypes.items()):
+        if dtype == np.float64:
+            values = block[:, floats.index(j)]
+        elif isinstance(dtype, np.dtype):
+            values = np.concatenate([p.iloc[:, j].to_numpy() for p in parts])
+        else:
+            values = pd.concat([p.iloc[:, j] for p in parts], ignore_index=True).array
+        data[col] = pd.Series(values, index=index, dtype=dtype, copy=False)  # no type inference
+    return pd.DataFrame(data, index=index, columns=first.columns)
+
+
+_MAX_PIECES = 40
+
+
+class _Pieces:
+    """A stream's merged frame as time-ordered, non-overlapping pieces (one concat at the end).
+
+    Merging a file touches only the stored rows within the file's time span (plus one
+    neighbouring row, so that the merge always sees a non-empty store): merging N weekly
+    files costs O(N) instead of the O(N²) of re-building the whole frame per file. The
+    result is the frame the file-by-file merge of the whole frame gives, column order and
+    object cleaning included.
+    """
+
+    def __init__(self, stored: pd.DataFrame | None):
+        self.parts: list[pd.DataFrame] = [] if stored is None or len(stored) == 0 else [stored]
+        self.empty = stored  # None, or an empty stored frame (its columns)
+        self.order: list[str] = [] if stored is None else [c for c in stored.columns if c not in _PROV]
+        self.widened = False  # a merge added columns: the other pieces lack them until the end
+        self.bounds: list[tuple[int, int]] | None = None  # (first, last) ns of each piece
+
+    def merge(self, merge_fn, raw: pd.DataFrame):
+        for c in raw.columns:
+            if c not in self.order:
+                self.order.append(c)
+        if not self.parts or len(raw) == 0:  # nothing stored yet, or an empty file: the plain merge
+            stored = self.frame() if self.parts else self.empty
+            merged, log = merge_fn(stored)
+            self.parts = [merged] if len(merged) else []
+            self.empty = merged.iloc[:0] if not len(merged) else None
+            self.bounds = None
+            return merged, log
+        first, last = raw.index.asi8[0], raw.index.asi8[-1]
+        if self.bounds is None:
+            self.bounds = [(p.index.asi8[0], p.index.asi8[-1]) for p in self.parts]
+        # pieces whose rows may fall in [first, last]; at least one piece (a neighbour row)
+        lo = next((i for i, (_, t) in enumerate(self.bounds) if t >= first), len(self.parts) - 1)
+        hi = max((i for i, (t, _) in enumerate(self.bounds) if t <= last), default=0)
+        lo, hi = min(lo, hi), max(lo, hi)
+        local = self.parts[lo] if lo == hi else _concat_rows(self.parts[lo:hi + 1])
+        idx = local.index.asi8
+        a = int(idx.searchsorted(first, side="left"))
+        b = int(idx.searchsorted(last, side="right"))
+        if a == b:  # no stored row in the file's span: take the nearest one before (or after)
+            a, b = (a - 1, a) if a > 0 else (a, a + 1)
+        merged, log = merge_fn(local.iloc[a:b])
+        if len(merged.columns) != len(local.columns):
+            self.widened = True
+        new = [p for p in (local.iloc[:a], merged, local.iloc[b:]) if len(p)]
+        self.parts[lo:hi + 1] = new
+        self.bounds[lo:hi + 1] = [(p.index.asi8[0], p.index.asi8[-1]) for p in new]
+        # keep few pieces (files arrive mostly in time order: the last pieces are the ones
+        # merged into next): every _MAX_PIECES files the older pieces are joined into one
+        if len(self.parts) > _MAX_PIECES:
+            self.parts[:-2] = [_concat_rows(self.parts[:-2])]
+            self.bounds[:-2] = [(self.bounds[0][0], self.bounds[-3][1])]
+        return merged, log
+
+    def frame(self) -> pd.DataFrame:
+        if not self.parts:
+            return self.empty
+        if len(self.parts) == 1 and not self.widened:
+            return self.parts[0]
+        out = _concat_rows(self.parts)[self.order + list(_PROV)]
+        if self.widened:
+            out = _clean_objects(out)
+        out.index = pd.DatetimeIndex(out.index, freq=None, name=INDEX_NAME)
+        self.parts, self.widened, self.bounds = [out], False, None
+        return out
 
 
 class SiteStore:
@@ -486,6 +586,7 @@ class SiteStore:
         log_parts: list[pd.DataFrame] = []
         reports = []
         now = _now()
+        pieces: dict[str, _Pieces] = {}  # merged streams, kept in time-ordered pieces until the end
         for ing in ingested_files:
             name = Path(ing.path).name
             stream = str(ing.stream)
@@ -502,9 +603,9 @@ class SiteStore:
                 raise StoreError(
                     f"stream {stream!r} holds {_minutes(stored)} data but this file is {_minutes(interval)}: "
                     "refusing to mix intervals in one stream", file=ing.path)
-            merged, log = self._merge(frames.get(stream), raw, ing, name, stream, interval,
-                                      supersede, now, report)
-            frames[stream] = merged
+            merged, log = pieces.setdefault(stream, _Pieces(frames.get(stream))).merge(
+                lambda stored: self._merge(stored, raw, ing, name, stream, interval,
+                                           supersede, now, report), raw)
             dirty.add(stream)
             if log is not None and len(log):
                 log_parts.append(log)
@@ -518,6 +619,8 @@ class SiteStore:
                            "last": raw.index[-1].isoformat() if len(raw) else None})
             new_manifest["files"].append(record)
             reports.append(report)
+        for stream, parts in pieces.items():
+            frames[stream] = parts.frame()
         return PendingChange(store=self, base_sha256=_sha(manifest_bytes), old_manifest=manifest,
                              new_manifest=new_manifest, full_frames=frames, dirty=dirty,
                              log_parts=log_parts, reports=reports, now=now)
@@ -575,9 +678,17 @@ class SiteStore:
         differ = np.zeros((n_ov, len(common)), dtype=bool)
         fill = np.zeros((n_ov, len(common)), dtype=bool)
         compared = np.zeros((n_ov, len(common)), dtype=bool)  # both non-missing
+        # all compared columns float (the usual case): one 2-D array each instead of per-column
+        # frame look-ups (same elementwise tests)
+        s_types, r_types = stored.dtypes, raw.dtypes
+        all_float = bool(common) and all(s_types[c] == np.float64 and r_types[c] == np.float64 for c in common)
+        raw_block = raw[common].to_numpy() if all_float else None
+        if all_float:
+            s_all = stored[common].to_numpy()[s_pos]
+            r_all = raw_block[r_pos]
         for j, col in enumerate(common):
-            s = stored[col].to_numpy()[s_pos]
-            r = raw[col].to_numpy()[r_pos]
+            s = s_all[:, j] if all_float else stored[col].to_numpy()[s_pos]
+            r = r_all[:, j] if all_float else raw[col].to_numpy()[r_pos]
             s_na = pd.isna(s)
             r_na = pd.isna(r)
             both = ~s_na & ~r_na
@@ -615,22 +726,24 @@ class SiteStore:
         # the merged frame: union of rows and columns
         index = stored.index.union(raw.index)
         out = stored.reindex(index)
+        # one frame built at the end, not per-column inserts
+        columns = {col: out[col] for col in out.columns if not (all_float and col in common)}
         for col in new_cols:
-            out[col] = raw[col].reindex(index)
+            columns[col] = raw[col].reindex(index)
         new_only = ~index.isin(stored.index)
         new_pos = raw.index.get_indexer(index[new_only])
-        for col in common:
-            values = out[col].to_numpy(copy=True)
-            incoming = raw[col].to_numpy()
+        out_block = out[common].to_numpy() if all_float else None  # a copy: written below
+        for col_j, col in enumerate(common):
+            values = out_block[:, col_j] if all_float else columns[col].to_numpy(copy=True)
+            incoming = raw_block[:, col_j] if all_float else raw[col].to_numpy()
             if values.dtype != incoming.dtype and not (values.dtype.kind == "f" and incoming.dtype.kind in "fiu"):
                 values = values.astype(object)
             values[new_only] = incoming[new_pos]
-            col_j = common.index(col)
             rows = np.flatnonzero(replace[:, col_j])
             if len(rows):
                 values[index.get_indexer(overlap[rows])] = incoming[r_pos[rows]]
-            out[col] = values
-        out = out[stored_cols + new_cols + list(_PROV)]
+            columns[col] = values
+        out = pd.DataFrame({col: columns[col] for col in stored_cols + new_cols + list(_PROV)}, index=index)
         pc = PROVENANCE_COLUMNS
         out.loc[new_only, pc["source_file"]] = name
         out.loc[new_only, pc["source_sha256"]] = sha
@@ -661,8 +774,9 @@ class SiteStore:
                     "stored_value": float(sv) if numeric else np.nan,
                     "new_value": float(rv) if numeric else np.nan,
                     "stored_text": None if numeric else str(sv), "new_text": None if numeric else str(rv),
-                    "stored_file": stored[pc["changed_by_file"]].iat[sr] or stored[pc["source_file"]].iat[sr],
-                    "stored_sha256": stored[pc["changed_by_sha256"]].iat[sr] or stored[pc["source_sha256"]].iat[sr],
+                    "stored_file": _text_or(stored[pc["changed_by_file"]].iat[sr], stored[pc["source_file"]].iat[sr]),
+                    "stored_sha256": _text_or(stored[pc["changed_by_sha256"]].iat[sr],
+                                              stored[pc["source_sha256"]].iat[sr]),
                     "new_file": name, "new_sha256": sha,
                 })
             log = pd.DataFrame(entries, columns=_LOG_COLUMNS)

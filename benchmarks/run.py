@@ -1,0 +1,357 @@
+"""The benchmark suite: every stage of the site job for 1, 4 and 16 site-years, side by side.
+
+Run from the repository root::
+
+    .venv/bin/python benchmarks/run.py [--sizes 1 4 16] [--out benchmarks/results]
+
+It writes invented data once (``--data``, default a folder under the system temp folder;
+see ``benchmarks/_data.py``: one invented grassland site with 1, 4 or 16 years of weekly
+CSV exports, the demo grassland logger layout), then measures, in one run:
+
+* per size, in this process after a warm-up run (imports and first-call costs excluded,
+  interpreter start-up excluded): the wall time of every stage of
+  :func:`towerflow.runner.run_site` from an empty output folder (ingest = read files +
+  store merge + working frame; QC; closure and health; filling; conductance; outputs =
+  tables + writing + store commit), the PDF report
+  (:func:`reports.site.write_site_report`) and the CPU time of the whole job;
+* the input/output floor on the same CSV files: ``pandas.read_csv`` of every file,
+  concatenated and written to one parquet file;
+* per size, ``towerflow run CONFIG FILES --out DIR --no-report`` as a subprocess: wall time
+  and peak resident memory (``ru_maxrss`` of that child), beside the peak of an interpreter
+  that only imports the job (the fixed part of the memory);
+* the similar-conditions filling speed-up over the plain per-gap loop
+  (``benchmarks/bench_gapfill.py``);
+* the network parallel efficiency: 8 invented site-years, workers=1 against workers=2
+  (``benchmarks/bench_network.py``);
+* ``towerflow demo`` as a subprocess (wall time, with the PDF reports, no Prefect).
+
+The markdown table (stage × size, then the targets of issue 9 with met / not met) is
+printed and written to ``<out>/<UTC date>-<git short sha>.md`` so versions can be compared.
+Timings on a shared machine vary with its load: the 1-minute load average is recorded.
+All data are invented.
+"""
+from __future__ import annotations
+
+import argparse
+import datetime as _dt
+import json
+import os
+import platform
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+import pandas as pd
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+sys.path.insert(0, str(HERE))
+
+from _data import write_site_years  # noqa: E402
+
+#: rows of the stage table: (label, function of the timings dict -> seconds)
+STAGE_ROWS = (
+    ("ingest: read files", lambda t: t.get("read_files")),
+    ("ingest: store merge", lambda t: t.get("store_merge")),
+    ("ingest: working frame", lambda t: t.get("ingest")),
+    ("**ingest**", lambda t: _sum(t, "read_files", "store_merge", "ingest")),
+    ("**QC**", lambda t: t.get("qc")),
+    ("**closure** (+ health)", lambda t: t.get("closure")),
+    ("**filling**", lambda t: t.get("filling")),
+    ("**conductance**", lambda t: t.get("conductance")),
+    ("outputs: tables", lambda t: t.get("outputs")),
+    ("outputs: write files", lambda t: t.get("write")),
+    ("outputs: store commit", lambda t: t.get("store_commit")),
+    ("**outputs**", lambda t: _sum(t, "outputs", "write", "store_commit")),
+    ("**all stages but the PDF** (in-process)", lambda t: t.get("total")),
+    ("CPU time of the above", lambda t: t.get("cpu_total")),
+    ("**report** (PDF)", lambda t: t.get("report")),
+)
+
+
+def _sum(t: dict, *keys) -> float | None:
+    values = [t.get(k) for k in keys]
+    return None if any(v is None for v in values) else sum(values)
+
+
+def _fmt(x, unit: str = "s") -> str:
+    if x is None:
+        return "–"
+    if unit == "s":
+        return f"{x:.2f}" if x < 10 else f"{x:.1f}"
+    return f"{x:.0f}"
+
+
+def machine() -> dict:
+    cpu = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    ram = None
+    try:
+        for line in Path("/proc/meminfo").read_text().splitlines():
+            if line.startswith("MemTotal"):
+                ram = int(line.split()[1]) / 1024 ** 2
+    except OSError:
+        pass
+    return {"cpus": os.cpu_count(), "cpu_model": cpu, "ram_gib": ram, "python": platform.python_version(),
+            "pandas": pd.__version__}
+
+
+def git_sha() -> str:
+    try:
+        sha = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT, capture_output=True,
+                             text=True, timeout=10).stdout.strip()
+        dirty = subprocess.run(["git", "status", "--porcelain", "--untracked-files=no"], cwd=ROOT,
+                               capture_output=True, text=True, timeout=10).stdout.strip()
+        return (sha or "nogit") + ("-dirty" if dirty else "")
+    except (OSError, subprocess.SubprocessError):
+        return "nogit"
+
+
+def _tool(name: str) -> str:
+    """A console script of the running environment (``.venv/bin/towerflow``)."""
+    candidate = Path(sys.executable).parent / name
+    return str(candidate) if candidate.exists() else name
+
+
+def run_child(args: list[str], *, cwd=None) -> tuple[float, float, int]:
+    """Run a subprocess; return (wall s, peak resident memory MiB, exit status)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(args, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    _, status, usage = os.wait4(proc.pid, 0)
+    wall = time.perf_counter() - t0
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
+    if proc.returncode != 0:
+        print(f"warning: {' '.join(args[:3])} … exited {proc.returncode}: {err[-400:]}", file=sys.stderr)
+    return wall, usage.ru_maxrss / 1024, proc.returncode  # ru_maxrss is in KiB on Linux
+
+
+def io_floor(files) -> float:
+    """Seconds to read the CSV files with pandas.read_csv and write them as one parquet file."""
+    with tempfile.TemporaryDirectory() as tmp:
+        t0 = time.perf_counter()
+        frames = [pd.read_csv(f) for f in files]
+        pd.concat(frames, ignore_index=True).to_parquet(Path(tmp) / "floor.parquet")
+        return time.perf_counter() - t0
+
+
+def time_site(data, out: Path, *, report: bool) -> dict:
+    """One in-process run of the site job from an empty output folder; its timings."""
+    from towerflow.runner import run_site
+
+    shutil.rmtree(out, ignore_errors=True)
+    c0 = time.process_time()
+    outcome = run_site(data.config, list(data.files), out, report=False)
+    timings = dict(outcome.timings)
+    timings["cpu_total"] = time.process_time() - c0
+    if report:
+        try:
+            from reports.site import write_site_report
+        except ImportError:
+            return timings
+        t0 = time.perf_counter()
+        write_site_report(outcome.out_dir)
+        timings["report"] = time.perf_counter() - t0
+    return timings
+
+
+def bench_sizes(sizes, data_root: Path, work: Path, *, report: bool, repeat: int) -> dict:
+    results = {}
+    datasets = {}
+    for n in sizes:
+        t0 = time.perf_counter()
+        datasets[n] = write_site_years(data_root / f"grassland-{n}y", n)
+        print(f"data: {n} site-year(s), {len(datasets[n].files)} files, "
+              f"{datasets[n].csv_bytes / 1e6:.1f} MB ({time.perf_counter() - t0:.0f} s)", file=sys.stderr)
+    # warm-up: imports and first calls (scipy submodules, numba-free lazy imports) happen here
+    first = datasets[min(sizes)]
+    time_site(first, work / "warmup", report=report)
+    # fixed memory: an interpreter that imports the job and does nothing
+    _, base_rss, _ = run_child([sys.executable, "-c", "import towerflow.runner, towerflow.cli, pipeline.process,"
+                                " pipeline.qc, pipeline.closure, pipeline.health, pipeline.gapfill,"
+                                " pipeline.conductance, pipeline.outputs, scipy.optimize, scipy.stats"])
+    for n in sizes:
+        data = datasets[n]
+        print(f"timing {n} site-year(s) …", file=sys.stderr)
+        floors = [io_floor(data.files) for _ in range(repeat)]
+        runs = [time_site(data, work / f"run-{n}y", report=report) for _ in range(repeat)]
+        best = min(runs, key=lambda t: t["total"])
+        out_dir = work / f"cli-{n}y"
+        shutil.rmtree(out_dir, ignore_errors=True)
+        wall, rss, status = run_child([_tool("towerflow"), "run", str(data.config),
+                                       *map(str, data.files), "--out", str(out_dir), "--no-report"])
+        results[n] = {
+            "timings": best, "floor_s": min(floors), "cli_wall_s": wall, "cli_peak_rss_mib": rss,
+            "cli_status": status, "base_rss_mib": base_rss, "rows": data.rows,
+            "files": len(data.files), "csv_mb": data.csv_bytes / 1e6,
+        }
+    shutil.rmtree(work, ignore_errors=True)
+    return results
+
+
+def bench_filling() -> dict | None:
+    try:
+        import bench_gapfill
+    except ImportError:
+        return None
+    return bench_gapfill.run(days=365, repeat=1)
+
+
+def bench_network(data_root: Path) -> dict | None:
+    try:
+        import bench_network
+    except ImportError:
+        return None
+    return bench_network.run(workers=2, repeat=1, data=data_root / "network")
+
+
+def bench_demo(work: Path) -> dict:
+    out = work / "demo"
+    shutil.rmtree(out, ignore_errors=True)
+    wall, rss, status = run_child([_tool("towerflow"), "demo", "--out", str(out)])
+    reports = len(list(out.rglob("*.pdf"))) if out.exists() else 0
+    shutil.rmtree(out, ignore_errors=True)
+    return {"wall_s": wall, "peak_rss_mib": rss, "status": status, "pdf_reports": reports}
+
+
+def table(res: dict) -> str:
+    sizes = sorted(res["sizes"])
+    sz = res["sizes"]
+    head = "| stage (wall s) | " + " | ".join(f"{n} site-year{'s' if n > 1 else ''}" for n in sizes) + " |"
+    lines = [head, "|---|" + "---:|" * len(sizes)]
+    for label, fn in STAGE_ROWS:
+        lines.append(f"| {label} | " + " | ".join(_fmt(fn(sz[n]["timings"])) for n in sizes) + " |")
+    extra = (
+        ("`towerflow run --no-report` subprocess wall", lambda r: _fmt(r["cli_wall_s"])),
+        ("input/output floor (read_csv + to_parquet)", lambda r: _fmt(r["floor_s"])),
+        ("all stages but the PDF / floor", lambda r: f"{r['timings']['total'] / r['floor_s']:.1f} ×"),
+        ("peak memory of the subprocess (MiB)", lambda r: _fmt(r["cli_peak_rss_mib"], "n")),
+        ("peak memory above the bare imports (MiB)",
+         lambda r: _fmt(r["cli_peak_rss_mib"] - r["base_rss_mib"], "n")),
+        ("intervals / CSV files / CSV MB", lambda r: f"{r['rows']} / {r['files']} / {r['csv_mb']:.1f}"),
+    )
+    for label, fn in extra:
+        lines.append(f"| {label} | " + " | ".join(fn(sz[n]) for n in sizes) + " |")
+    return "\n".join(lines)
+
+
+def targets(res: dict) -> list[tuple[str, str, bool | None]]:
+    """(target, measured figure, met?) for issue 9's targets."""
+    out = []
+    sz = res["sizes"]
+    if 1 in sz:
+        r1 = sz[1]
+        ratio = r1["timings"]["total"] / r1["floor_s"]
+        out.append(("one site-year, all stages but the PDF ≤ 10 × I/O floor",
+                    f"{r1['timings']['total']:.2f} s = {ratio:.1f} × floor ({r1['floor_s']:.2f} s)", ratio <= 10))
+        if 16 in sz:
+            r16 = sz[16]
+            t = r16["timings"]["total"] / r1["timings"]["total"]
+            out.append(("16 site-years ≤ 17 × one site-year", f"{t:.1f} ×", t <= 17))
+            m1 = r1["cli_peak_rss_mib"] - r1["base_rss_mib"]
+            m16 = r16["cli_peak_rss_mib"] - r16["base_rss_mib"]
+            data_ratio = r16["rows"] / r1["rows"]
+            mr = m16 / m1 if m1 > 0 else float("nan")
+            out.append(("peak memory grows no faster than the data",
+                        f"{r1['cli_peak_rss_mib']:.0f} → {r16['cli_peak_rss_mib']:.0f} MiB in all; above the "
+                        f"bare imports {m1:.0f} → {m16:.0f} MiB = {mr:.1f} × for {data_ratio:.0f} × the data",
+                        mr <= data_ratio))
+        if r1["timings"].get("report") is not None:
+            rep = r1["timings"]["report"]
+            out.append(("PDF report for one site-year ≤ 5 s", f"{rep:.2f} s", rep <= 5))
+    f = res.get("filling")
+    if f:
+        out.append(("similar-conditions filling ≥ 10 × the plain per-gap loop, identical output",
+                    f"{f['speedup_vs_plain_loop']:.0f} × ({f['plain_loop_s']:.2f} s → {f['vectorised_s']:.3f} s "
+                    f"CPU; max |diff| {f['max_abs_diff']:.1e})",
+                    f["speedup_vs_plain_loop"] >= 10 and f["max_abs_diff"] <= 1e-9))
+    nw = res.get("network")
+    if nw:
+        out.append((f"network of {nw['sites']} site-years on {nw['workers']} workers: efficiency ≥ 80 %",
+                    f"{100 * nw['efficiency']:.0f} % (serial {nw['serial_s']:.1f} s, parallel {nw['parallel_s']:.1f} s)",
+                    nw["efficiency"] >= 0.8))
+    d = res.get("demo")
+    if d:
+        out.append(("`towerflow demo` ≤ 60 s wall", f"{d['wall_s']:.1f} s ({d['pdf_reports']} PDF reports, "
+                    f"exit {d['status']})", d["wall_s"] <= 60 and d["status"] == 0))
+    return out
+
+
+def markdown(res: dict) -> str:
+    m = res["machine"]
+    lines = [
+        f"# towerflow benchmark {res['date']} ({res['git']})",
+        "",
+        f"Command: `{res['command']}`  ",
+        f"Machine: {m['cpus']} CPUs ({m['cpu_model']}), {m['ram_gib']:.1f} GiB RAM, Python {m['python']}, "
+        f"pandas {m['pandas']}; 1-min load average {res['load_start']:.1f} at the start, "
+        f"{res['load_end']:.1f} at the end.  ",
+        "Data: one invented grassland site, weekly 30-min CSV exports (`benchmarks/_data.py`). "
+        "In-process timings after a warm-up run, from an empty output folder.",
+        "",
+        table(res),
+        "",
+        "| target (issue 9) | measured | met |",
+        "|---|---|---|",
+    ]
+    for name, figure, ok in targets(res):
+        lines.append(f"| {name} | {figure} | {'yes' if ok else 'NO'} |")
+    return "\n".join(lines) + "\n"
+
+
+def main(argv=None) -> dict:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", type=int, nargs="+", default=[1, 4, 16], help="site-years (default 1 4 16)")
+    ap.add_argument("--out", type=Path, default=HERE / "results", help="folder for the markdown result")
+    ap.add_argument("--data", type=Path, default=Path(tempfile.gettempdir()) / "towerflow-bench",
+                    help="folder for the invented data (kept and reused)")
+    ap.add_argument("--repeat", type=int, default=1, help="in-process runs per size (the fastest is kept)")
+    ap.add_argument("--no-report", action="store_true", help="skip the PDF report timing")
+    ap.add_argument("--skip", nargs="*", default=[], choices=["filling", "network", "demo"],
+                    help="parts to leave out")
+    args = ap.parse_args(argv)
+    warnings.simplefilter("ignore")
+    os.environ.setdefault("PYTHONWARNINGS", "ignore")
+    args.data.mkdir(parents=True, exist_ok=True)
+    work = Path(tempfile.mkdtemp(prefix="towerflow-bench-run-"))
+    res = {
+        "date": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+        "git": git_sha(), "machine": machine(), "load_start": os.getloadavg()[0],
+        "command": " ".join([".venv/bin/python", "benchmarks/run.py", *(argv if argv is not None else sys.argv[1:])]),
+    }
+    res["sizes"] = bench_sizes(sorted(set(args.sizes)), args.data, work / "sites",
+                               report=not args.no_report, repeat=args.repeat)
+    if "filling" not in args.skip:
+        print("timing the filling against the per-gap loop …", file=sys.stderr)
+        res["filling"] = bench_filling()
+    if "network" not in args.skip:
+        print("timing the network (8 site-years, 1 and 2 workers) …", file=sys.stderr)
+        res["network"] = bench_network(args.data)
+    if "demo" not in args.skip:
+        print("timing towerflow demo …", file=sys.stderr)
+        res["demo"] = bench_demo(work)
+    shutil.rmtree(work, ignore_errors=True)
+    res["load_end"] = os.getloadavg()[0]
+    text = markdown(res)
+    print(text)
+    args.out.mkdir(parents=True, exist_ok=True)
+    stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d")
+    path = args.out / f"{stamp}-{res['git']}.md"
+    path.write_text(text, encoding="utf-8")
+    (path.with_suffix(".json")).write_text(json.dumps(res, indent=1, default=str), encoding="utf-8")
+    print(f"written {path}", file=sys.stderr)
+    return res
+
+
+if __name__ == "__main__":
+    main()
