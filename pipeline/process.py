@@ -19,7 +19,7 @@ from .rules import duration
 __all__ = ["SiteState", "SiteProducts", "STAGES", "process", "run_stage"]
 
 #: stage names in order (used by the flows, the progress bar and the benchmarks)
-STAGES = ("ingest", "qc", "closure", "filling", "conductance", "outputs")
+STAGES = ("ingest", "qc", "closure", "filling", "uncertainty", "conductance", "outputs")
 
 
 @dataclass
@@ -122,6 +122,21 @@ def stage_filling(state: SiteState) -> SiteState:
     return state
 
 
+def stage_uncertainty(state: SiteState) -> SiteState:
+    """Random and filling errors per interval, and ET totals with their bands."""
+    from .uncertainty import assess_uncertainty
+
+    result = assess_uncertainty(state.frame, state.flags, state.site, state.rules,
+                                filling=state.columns["filling"], fill_summary=state.summary,
+                                closure=state.columns.get("closure"))
+    state.columns["uncertainty"] = result.columns
+    state.summary.update(result.summary)
+    state.warnings.extend(result.warnings)
+    if result.daily is not None:
+        state.daily["uncertainty"] = result.daily
+    return state
+
+
 def stage_conductance(state: SiteState) -> SiteState:
     from .conductance import compute_conductance
 
@@ -203,13 +218,14 @@ def _history_summary(cfg: SiteConfig) -> list[dict]:
 def stage_outputs(state: SiteState, *, software_version: str = "") -> SiteProducts:
     from .outputs import daily_table, intervals_table
 
-    parts = [state.columns[k] for k in ("filling", "conductance", "closure", "health") if k in state.columns]
+    parts = [state.columns[k] for k in ("filling", "uncertainty", "conductance", "closure", "health")
+             if k in state.columns]
     helper_cols = [c for c in ("is_day", "snow_or_frozen") if c in state.frame and c not in state.frame_ingested]
     if helper_cols:
         parts.append(state.frame[helper_cols])
     intervals = intervals_table(state.frame_ingested, state.flags, *parts, interval=state.site.interval)
     daily_parts = [_daily_core(state)]
-    for key in ("closure", "conductance", "filling"):
+    for key in ("closure", "conductance", "filling", "uncertainty"):
         if key in state.daily:
             d = state.daily[key].copy()
             d.index = pd.to_datetime(pd.Index(d.index))
@@ -241,6 +257,7 @@ def run_stage(name: str, state, **kwargs):
         "qc": stage_qc,
         "closure": stage_closure,
         "filling": stage_filling,
+        "uncertainty": stage_uncertainty,
         "conductance": stage_conductance,
     }[name](state, **kwargs)
 
@@ -263,5 +280,6 @@ def process(raw_by_stream: dict[str, pd.DataFrame], cfg: SiteConfig, rules: dict
     state = _timed("qc", stage_qc, state)
     state = _timed("closure", stage_closure, state)
     state = _timed("filling", stage_filling, state)
+    state = _timed("uncertainty", stage_uncertainty, state)
     state = _timed("conductance", stage_conductance, state)
     return _timed("outputs", stage_outputs, state, software_version=software_version)

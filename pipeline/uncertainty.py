@@ -678,7 +678,7 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
     -----
     TowerflowWarning
         Too few pairs for a random-error model; a driver of the pairing rule missing; no
-        precip (rain not excluded from pairs).
+        precip (rain not excluded from pairs); many values filled during or after rain.
     """
     u = uncertainty_rules(rules)
     wet_rules = dict(standard_rules().get("wet", {}))
@@ -928,9 +928,11 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
                    "dominates (Wilson et al. 2002).")
     wet_share = whole["filled_after_rain_fraction"] or 0.0
     if wet_share > float(u["wet_fill_caution_fraction"]):
-        verdict += (f" Caution: {wet_share:.0%} of the intervals are filled during or within "
-                    f"{u['rain_lead']} after rain; fills from drier similar conditions can miss "
-                    "the evaporation of intercepted water, a one-sided error the band does not cover.")
+        caution = (f"Caution: {wet_share:.0%} of the intervals are filled during or within "
+                   f"{u['rain_lead']} after rain; fills from drier similar conditions can miss "
+                   "the evaporation of intercepted water, a one-sided error the band does not cover.")
+        verdict += " " + caution
+        _warn(f"uncertainty: {caution}")
     summary = {
         "uncertainty": {
             "random_error": {flux: models[flux] for flux in _FLUXES},

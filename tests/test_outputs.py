@@ -150,3 +150,17 @@ def test_effective_rules_repeat_the_run(grassland_run, tmp_path):
                  "--rules", str(rules_copy)]) == 0
     after = pd.read_parquet(out / "demo-upland-grassland" / "intervals.parquet")
     pd.testing.assert_frame_equal(before, after)
+
+
+def test_totals_and_daily_uncertainty(grassland_run):
+    """totals.parquet holds month and record totals with a band that contains the estimate."""
+    _, _, site_dir = grassland_run
+    totals = pd.read_parquet(site_dir / "totals.parquet")
+    assert len(totals) >= 2
+    for col in ("et_mm", "et_mm_sd", "et_mm_p025", "et_mm_p975", "et_closed_mm"):
+        assert col in totals.columns, col
+    ok = totals["et_mm"].notna()
+    assert (totals.loc[ok, "et_mm_p025"] <= totals.loc[ok, "et_mm"]).all()
+    assert (totals.loc[ok, "et_mm"] <= totals.loc[ok, "et_mm_p975"]).all()
+    daily = pd.read_parquet(site_dir / "daily.parquet")
+    assert "et_mm_sd" in daily.columns

@@ -443,7 +443,7 @@ def run_site(config_path: str | os.PathLike, files, out_dir: str | os.PathLike, 
     prepared = prepare_site(config_path, files, out_dir, supersede=supersede, rules_spec=rules_spec,
                             timings=timings)
     state = prepared.state
-    for name in ("qc", "closure", "filling", "conductance"):
+    for name in ("qc", "closure", "filling", "uncertainty", "conductance"):
         if on_stage:
             on_stage(name)
         t0 = time.perf_counter()
@@ -501,9 +501,17 @@ def _write_outputs(site_dir: Path, cfg: SiteConfig, products: SiteProducts, rule
     log = change_log(previous, products.intervals, previous_meta=previous_meta,
                      current_meta=file_meta, new_rows=new_rows)
 
-    write_parquet(dest("intervals.parquet"), products.intervals, file_metadata=file_meta)
-    write_parquet(dest("daily.parquet"), products.daily,
-                  file_metadata={k: v for k, v in file_meta.items() if k != "effective_rules"})
+    from pipeline.uncertainty import COLUMN_METADATA as uncertainty_metadata
+
+    small_meta = {k: v for k, v in file_meta.items() if k != "effective_rules"}
+    write_parquet(dest("intervals.parquet"), products.intervals, file_metadata=file_meta,
+                  extra=uncertainty_metadata)
+    write_parquet(dest("daily.parquet"), products.daily, file_metadata=small_meta,
+                  extra=uncertainty_metadata)
+    totals = pd.DataFrame(products.summary.get("totals") or [])
+    if len(totals):
+        write_parquet(dest("totals.parquet"), totals, file_metadata=small_meta,
+                      extra=uncertainty_metadata)
     atomic_write_text(dest("effective_rules.toml"), rules_toml)
     atomic_write_text(dest("changes.json"), json.dumps(json_ready(log), indent=1))
     atomic_write_text(dest("changes.md"), _changes_markdown(cfg.site.id, log))

@@ -743,11 +743,26 @@ class SiteStore:
             if len(rows):
                 values[index.get_indexer(overlap[rows])] = incoming[r_pos[rows]]
             columns[col] = values
-        out = pd.DataFrame({col: columns[col] for col in stored_cols + new_cols + list(_PROV)}, index=index)
         pc = PROVENANCE_COLUMNS
-        out.loc[new_only, pc["source_file"]] = name
-        out.loc[new_only, pc["source_sha256"]] = sha
-        out.loc[new_only, pc["ingested_at"]] = now
+        # provenance of the new rows, set on the arrays (text columns already of object type
+        # and a UTC time column: what the .loc assignments below would give)
+        quick = bool(new_only.any()) and all(
+            columns[pc[k]].dtype == object for k in ("source_file", "source_sha256")) and \
+            isinstance(columns[pc["ingested_at"]].dtype, pd.DatetimeTZDtype) and \
+            str(columns[pc["ingested_at"]].dtype.tz) == "UTC" and getattr(now, "tz", None) is not None
+        if quick:
+            for key, value in (("source_file", name), ("source_sha256", sha)):
+                arr = columns[pc[key]].to_numpy(dtype=object, copy=True)
+                arr[new_only] = value
+                columns[pc[key]] = arr
+            stamps = columns[pc["ingested_at"]].array.copy()
+            stamps[new_only] = now
+            columns[pc["ingested_at"]] = stamps
+        out = pd.DataFrame({col: columns[col] for col in stored_cols + new_cols + list(_PROV)}, index=index)
+        if not quick:
+            out.loc[new_only, pc["source_file"]] = name
+            out.loc[new_only, pc["source_sha256"]] = sha
+            out.loc[new_only, pc["ingested_at"]] = now
         if changed.any():
             where = index.get_indexer(overlap[changed])
             for key, value in (("changed_by_file", name), ("changed_by_sha256", sha)):
