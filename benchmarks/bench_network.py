@@ -9,6 +9,11 @@ runs it (:func:`towerflow.network.run_network_local`, no Prefect, no PDF reports
 * ``serial``: ``workers=1``, every site in this process, one after another;
 * ``parallel``: ``workers=N`` (default 2) local processes.
 
+Besides wall times it reports the CPU seconds the sites used inside the workers (equal in
+both modes when parallel running adds no work) and the share of the cores they got, with the
+Linux CPU pressure over the run: on a machine shared with other work the wall-time
+efficiency measures that load, not towerflow.
+
 Parallel efficiency = serial / (N × parallel). Each timing starts from an empty output
 folder (the first run of a network: every CSV parsed and stored). With ``--weekly`` it also
 times a second run over the same files (the store exists; every file deduplicates), which
@@ -76,6 +81,15 @@ def _time_network(network: Path, out: Path, workers: int) -> tuple[float, list[d
     return elapsed, results
 
 
+def _cpu_pressure_us() -> int | None:
+    """Total microseconds in which some task waited for a CPU (Linux PSI), or None."""
+    try:
+        line = Path("/proc/pressure/cpu").read_text().splitlines()[0]
+        return int(line.rsplit("total=", 1)[1])
+    except (OSError, IndexError, ValueError):
+        return None
+
+
 def run(*, workers: int = 2, repeat: int = 1, data: Path | None = None, weekly: bool = False) -> dict:
     """Time the network serially and on ``workers`` processes; returns the numbers."""
     warnings.simplefilter("ignore")
@@ -86,17 +100,23 @@ def run(*, workers: int = 2, repeat: int = 1, data: Path | None = None, weekly: 
     make_s = time.perf_counter() - t0
     out = data / "out"
     timings = {"serial": [], "parallel": [], "serial_weekly": [], "parallel_weekly": []}
+    cpu = {"serial": [], "parallel": []}
     per_site = {}
+    pressure0 = _cpu_pressure_us()
+    t_all = time.perf_counter()
     for _ in range(repeat):
         for mode, w in (("serial", 1), ("parallel", workers)):
             shutil.rmtree(out, ignore_errors=True)
             t, results = _time_network(network, out, w)
             timings[mode].append(t)
+            cpu[mode].append(sum(r["timings"].get("cpu", 0.0) for r in results))
             if mode == "serial":
                 per_site = {r["site"]: r["timings"].get("total") for r in results}
             if weekly:
                 t, _ = _time_network(network, out, w)
                 timings[f"{mode}_weekly"].append(t)
+    elapsed = time.perf_counter() - t_all
+    pressure1 = _cpu_pressure_us()
     shutil.rmtree(out, ignore_errors=True)
     serial = statistics.median(timings["serial"])
     parallel = statistics.median(timings["parallel"])
@@ -105,6 +125,14 @@ def run(*, workers: int = 2, repeat: int = 1, data: Path | None = None, weekly: 
         "load_average_1min": os.getloadavg()[0], "make_data_s": make_s,
         "serial_s": serial, "parallel_s": parallel,
         "efficiency": serial / (workers * parallel),
+        # CPU seconds the sites used (inside the workers): equal in both modes when running
+        # in parallel adds no work; the share of the cores they got shows other load
+        "serial_cpu_s": statistics.median(cpu["serial"]), "parallel_cpu_s": statistics.median(cpu["parallel"]),
+        "parallel_core_share": statistics.median(cpu["parallel"]) / (workers * parallel),
+        "serial_core_share": statistics.median(cpu["serial"]) / serial,
+        # fraction of the run's wall time in which some runnable task waited for a core
+        # (Linux pressure-stall information; near 0 on an otherwise idle machine)
+        "cpu_pressure": ((pressure1 - pressure0) / 1e6 / elapsed) if pressure0 is not None else None,
         "slowest_site_s": max(per_site.values()), "sum_site_s": sum(per_site.values()),
         "per_site_s": per_site, "all": timings,
     }
@@ -131,6 +159,11 @@ def main() -> None:
     print(f"| parallel (workers={r['workers']}) | {r['parallel_s']:.1f} s |")
     print(f"| parallel efficiency serial / ({r['workers']} × parallel) | {100 * r['efficiency']:.0f} % |")
     print(f"| slowest site / sum of sites (serial) | {r['slowest_site_s']:.1f} s / {r['sum_site_s']:.1f} s |")
+    print(f"| CPU seconds of the sites: serial / parallel | {r['serial_cpu_s']:.1f} s / {r['parallel_cpu_s']:.1f} s |")
+    print(f"| share of the cores the sites got: serial (of 1) / parallel (of {r['workers']}) | "
+          f"{100 * r['serial_core_share']:.0f} % / {100 * r['parallel_core_share']:.0f} % |")
+    if r["cpu_pressure"] is not None:
+        print(f"| time some task waited for a core (PSI; ~0 when idle) | {100 * r['cpu_pressure']:.0f} % |")
     if "serial_weekly_s" in r:
         print(f"| rerun, store present: serial / parallel | {r['serial_weekly_s']:.1f} s / "
               f"{r['parallel_weekly_s']:.1f} s |")

@@ -915,6 +915,67 @@ def page_drivers(ctx: Context) -> Figure:
     return fig
 
 
+def _fmt(value, digits: int = 1) -> str:
+    return "n/a" if value is None or (isinstance(value, float) and not np.isfinite(value)) else f"{value:.{digits}f}"
+
+
+def page_totals(ctx: Context) -> Figure:
+    """ET totals per month and for the record, with the random/filling band and the closure bracket."""
+    fig = _page(ctx, "Evapotranspiration totals and their uncertainty")
+    summary = ctx.out.summary or {}
+    totals = summary.get("totals") or []
+    daily = ctx.out.daily
+    ax_table = fig.add_axes([0.05, 0.50, 0.90, 0.38])
+    ax_table.axis("off")
+    if not totals:
+        style.note(ax_table, "No totals in summary.json (the uncertainty stage did not run).")
+    else:
+        header = ["period", "ET (mm)", "95 % band (mm)", "sd (mm)", "ET closed (mm)", "filled", "in long gaps"]
+        rows = []
+        for rec in totals:
+            rows.append([
+                str(rec.get("period", "")) + ("" if rec.get("complete", True) else " (part)"),
+                _fmt(rec.get("et_mm")),
+                f"{_fmt(rec.get('et_mm_p025'))} to {_fmt(rec.get('et_mm_p975'))}",
+                _fmt(rec.get("et_mm_sd")),
+                _fmt(rec.get("et_closed_mm")),
+                f"{100 * (rec.get('filled_fraction') or 0):.0f} %",
+                f"{100 * (rec.get('long_gap_fraction') or 0):.0f} %",
+            ])
+        top = _text_table(ax_table, header, rows[:18], top=0.98)
+        note = (summary.get("uncertainty") or {}).get("dominant")
+        lines = [note] if note else []
+        lines.append("ET from gap-filled LE; 'ET closed' from the Bowen-ratio-closed LE (the closure bracket). "
+                     "Filled values are estimates; use for water accounting or irrigation follows local rules "
+                     "and licensed practice.")
+        import textwrap
+
+        wrapped = "\n".join(textwrap.fill(line, 170) for line in lines)
+        ax_table.text(0.0, top - 0.04, wrapped, fontsize=7.5, ha="left", va="top", transform=ax_table.transAxes)
+    ax = fig.add_axes([0.07, 0.08, 0.86, 0.32])
+    if daily is None or "et_mm" not in daily.columns or not daily["et_mm"].notna().any():
+        style.note(ax, "No daily ET in daily.parquet (no complete day).")
+    else:
+        dates = pd.to_datetime(daily["date"])
+        et = daily["et_mm"].to_numpy(dtype=float, na_value=np.nan)
+        ax.plot(dates, np.nancumsum(et), color=style.ROLE["et"], label="cumulative ET from gap-filled LE")
+        if {"et_mm_p025", "et_mm_p975"} <= set(daily.columns):
+            lo = daily["et_mm_p025"].to_numpy(dtype=float, na_value=np.nan)
+            hi = daily["et_mm_p975"].to_numpy(dtype=float, na_value=np.nan)
+            ax.fill_between(dates, np.nancumsum(et) - (et - lo), np.nancumsum(et) + (hi - et),
+                            color=style.ROLE["et"], alpha=0.25, linewidth=0,
+                            label="daily 95 % band around the running total")
+        if "et_closed_mm" in daily.columns:
+            ax.plot(dates, np.nancumsum(daily["et_closed_mm"].to_numpy(dtype=float, na_value=np.nan)),
+                    color=style.OKABE_ITO["vermillion"], linestyle="--", label="cumulative ET, energy balance closed")
+        ax.set_ylabel("cumulative ET over complete days (mm)")
+        ax.set_xlabel("date (local standard time)")
+        ax.set_title("Running ET total: random band and closure bracket")
+        _time_axis_common(ctx, ax, history_labels=False)
+        ax.legend(loc="upper left")
+    return fig
+
+
 #: the pages in order: (title used in the table of contents, builder)
 PAGES = (
     ("Overview", page_overview),
@@ -927,4 +988,5 @@ PAGES = (
     ("Surface conductance and decoupling", page_conductance),
     ("Mean diurnal courses", page_diurnal),
     ("Drivers and evapotranspiration", page_drivers),
+    ("Evapotranspiration totals", page_totals),
 )

@@ -530,8 +530,9 @@ def _towerflow(*args) -> subprocess.Popen:
 
 
 def _sigkill_runs(demo, baseline, clean3, tmp_path, n_kills: int, seed: int) -> list[float]:
-    """Kill ``towerflow run`` subprocesses: half of them at a random moment shortly after the
-    run starts writing (its staging folder appears), the others at a random moment of the run."""
+    """Kill ``towerflow run`` subprocesses (each adding week 3 to the baseline): half of them at
+    a random moment shortly after the run starts writing (its staging folder appears), the
+    others at a random moment of the run. Returns (seconds, phase) of each kill."""
     rng = random.Random(seed)
     out = tmp_path / "out"
     shutil.copytree(baseline, out)
@@ -542,7 +543,8 @@ def _sigkill_runs(demo, baseline, clean3, tmp_path, n_kills: int, seed: int) -> 
         proc = _towerflow(demo["toml"], demo["weeks"][2], "--out", out)
         t0 = time.perf_counter()
         if i % 2 == 0:
-            while proc.poll() is None and not list(site_dir.glob(".staging-*")):
+            stale = set(site_dir.glob(".staging-*"))  # a killed run's left-over is not this run's
+            while proc.poll() is None and not set(site_dir.glob(".staging-*")) - stale:
                 time.sleep(0.002)
             time.sleep(rng.uniform(0.0, 0.15))
         else:
@@ -562,6 +564,10 @@ def _sigkill_runs(demo, baseline, clean3, tmp_path, n_kills: int, seed: int) -> 
         phase = ("finished" if proc.returncode == 0 else "after the store commit" if committed
                  else "while staging outputs" if staged else "before writing")
         moments.append((round(elapsed, 2), phase))
+        if proc.returncode == 0 or committed:  # the week is in: start the next kill afresh
+            if i < n_kills - 1:
+                shutil.rmtree(out)
+                shutil.copytree(baseline, out)
     # the next run takes over the dead run's lock, removes its left-overs, gives the clean result
     run_site(demo["toml"], [demo["weeks"][2]], out, report=False)
     assert_same_outputs(site_dir, clean3 / SITE)

@@ -44,7 +44,8 @@ def half_hourly(tmp_path_factory) -> Path:
 def test_site_report_has_every_page_with_site_and_period(half_hourly):
     """One page per entry of PAGE_TITLES; site id, period and 'page i of n' on every page."""
     texts = _pages_text(half_hourly / "qc_report.pdf")
-    assert len(texts) == len(PAGE_TITLES) == 10
+    assert len(texts) == len(PAGE_TITLES) == 11
+    assert "Evapotranspiration totals" in texts[-1]
     for i, text in enumerate(texts, start=1):
         assert "invented-meadow" in text, f"page {i} lacks the site id"
         assert "2025-05-01 00:00" in text and "2025-05-22 00:00" in text, f"page {i} lacks the period"

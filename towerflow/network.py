@@ -8,6 +8,7 @@ from __future__ import annotations
 import glob
 import json
 import os
+import time
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from pathlib import Path
 
@@ -68,6 +69,7 @@ def run_site_job(job: dict, on_stage=None) -> dict:
         on_stage = lambda index, name: _progress_queue.put((index, name))  # noqa: E731
     index = job.get("index", 0)
     site_id = Path(job["config"]).stem
+    cpu0 = time.process_time()
     try:
         try:
             site_id = load_site_config(job["config"]).site.id
@@ -83,7 +85,7 @@ def run_site_job(job: dict, on_stage=None) -> dict:
                            supersede=job.get("supersede", False),
                            on_stage=(lambda name: on_stage(index, name)) if on_stage else None)
         return {"index": index, "site": outcome.site, "status": "ok", "error": "",
-                "timings": outcome.timings}
+                "timings": {**outcome.timings, "cpu": time.process_time() - cpu0}}
     except Exception as exc:  # isolation: any failure of one site is reported, never raised
         return {"index": index, "site": site_id, "status": "failed",
                 "error": one_line(exc), "timings": {}}
