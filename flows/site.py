@@ -1,6 +1,6 @@
 """The weekly site job as a Prefect flow: one task per stage, passing folder paths.
 
-ingest → qc → closure → filling → conductance → outputs → report. Between tasks the
+ingest → qc → closure → filling → uncertainty → conductance → outputs → report. Between tasks the
 state lives in a work folder (parquet + JSON) under DIR/SITE_ID/, removed at the end;
 no frame travels through Prefect. Retries only where a failure can pass (the file
 system); bad data raise :class:`~pipeline.errors.TowerflowError`, which is never retried.
@@ -111,6 +111,7 @@ def _stage_task(stage: str):
 qc_task = _stage_task("qc")
 closure_task = _stage_task("closure")
 filling_task = _stage_task("filling")
+uncertainty_task = _stage_task("uncertainty")
 conductance_task = _stage_task("conductance")
 
 
@@ -142,6 +143,7 @@ def site_flow(config_path: str, files: list[str], out_dir: str, supersede: bool 
         work = qc_task(work)
         work = closure_task(work)
         work = filling_task(work)
+        work = uncertainty_task(work)
         work = conductance_task(work)
         site_dir = outputs_task(work)
     finally:

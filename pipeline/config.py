@@ -7,6 +7,7 @@ with a one-line message naming the file and key at fault.
 from __future__ import annotations
 
 import datetime as _dt
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -785,6 +786,14 @@ def load_network_config(path) -> NetworkConfig:
         seen[resolved] = i
         data = _string(tbl["data"], file=path, key=f"{p}.data")
         data_path = Path(data)
+        if not data_path.is_absolute():
+            # a relative glob stays inside the network file's folder: no '..' that leaves it
+            inside = os.path.normpath(path.parent.resolve() / data_path)
+            root = str(path.parent.resolve())
+            if os.path.commonpath([inside, root]) != root:
+                raise _err(path, f"{p}.data",
+                           f"the data glob {data!r} leaves the network file's folder; "
+                           "give an absolute path to use data kept elsewhere")
         data = str(data_path if data_path.is_absolute() else path.parent / data_path)
         sites.append(NetworkSite(config=cfg, data=data))
     return NetworkConfig(path=path, name=name, rules=rules, sites=tuple(sites), raw=raw)

@@ -109,17 +109,25 @@ def _minutes(value) -> float:
     return duration(value) / pd.Timedelta(minutes=1)
 
 
-def _accepted(frame, flags, var) -> np.ndarray:
+def _accepted(frame, flags, var, *, ignore: int = 0) -> np.ndarray:
+    """Values of ``var`` whose flags carry no bit other than those in ``ignore``."""
     values = frame[var].to_numpy(dtype=float, copy=True)
     if flags is not None and var in flags:
-        values[flags[var].to_numpy() != 0] = np.nan
+        values[(flags[var].to_numpy() & ~ignore) != 0] = np.nan
     return values
+
+
+#: the clock check reads radiation the consistency tests rejected: the clear-sky envelope
+#: test (bit 128) itself fails when the clock is off, which would hide the very offset
+_CLOCK_IGNORES = flagbits.CONSISTENCY | flagbits.CLOCK
 
 
 def _iso_week(days: pd.DatetimeIndex) -> np.ndarray:
     iso = days.isocalendar()
-    return np.array([f"{y}-W{w:02d}" for y, w in zip(iso["year"].to_numpy(), iso["week"].to_numpy())],
-                    dtype=object)
+    code = iso["year"].to_numpy(dtype=np.int64) * 100 + iso["week"].to_numpy(dtype=np.int64)
+    unique, inverse = np.unique(code, return_inverse=True)  # format each week once, not each day
+    labels = np.array([f"{c // 100}-W{c % 100:02d}" for c in unique.tolist()], dtype=object)
+    return labels[inverse.reshape(-1)]
 
 
 # ---------------------------------------------------------------------------
@@ -384,7 +392,11 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
     week = _iso_week(day)
     week_code, week_uniques = pd.factorize(week)
     week_labels = [str(w) for w in week_uniques]
-    in_week = {wk: week_code == k for k, wk in enumerate(week_labels)}  # boolean masks, once
+    # positions of each week's intervals (ascending), once: index arrays, not one boolean mask
+    # of the whole record per week (that costs weeks × intervals in time and memory)
+    order = np.argsort(week_code, kind="stable")
+    bounds = np.searchsorted(week_code[order], np.arange(len(week_labels) + 1))
+    in_week = {wk: order[bounds[k]:bounds[k + 1]] for k, wk in enumerate(week_labels)}
     findings: list[dict] = []
     warnings: list[str] = []
 
@@ -407,7 +419,7 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
     for wk in week_labels:
         sel = in_week[wk]
         weeks[wk] = {"week": wk, "start": str(day[sel][0].date()), "end": str(day[sel][-1].date()),
-                     "n_intervals": int(sel.sum())}
+                     "n_intervals": int(sel.size)}
 
     # ------------------------------------------------------------------ clock
     rad_var = "rg" if "rg" in frame and np.isfinite(_accepted(frame, flags, "rg")).any() else (
@@ -419,7 +431,7 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
     steps: list[dict] = []
     drift_per_week = None
     if rad_var is not None and n >= per_day:
-        rad = _accepted(frame, flags, rad_var)
+        rad = _accepted(frame, flags, rad_var, ignore=_CLOCK_IGNORES)
         # whole local days only
         counts = pd.Series(1, index=day).groupby(level=0).sum()
         full_days = counts.index[counts.to_numpy() == per_day]
@@ -462,8 +474,11 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
                 drift_per_week = _num(clock_drift(t_days, d_off, seg) * 7.0)
             # per-week offsets: the mean correlation curve of the week's clear days
             day_week = _iso_week(pd.DatetimeIndex([o["_day"] for o in daily_offsets]))
+            rows_by_week: dict[str, list[int]] = {}
+            for o, w_ in zip(daily_offsets, day_week):
+                rows_by_week.setdefault(w_, []).append(o["_row"])
             for wk in week_labels:
-                rows_wk = [o["_row"] for o, w_ in zip(daily_offsets, day_week) if w_ == wk]
+                rows_wk = rows_by_week.get(wk, [])
                 info = weeks[wk]
                 info["n_clear_days"] = len(rows_wk)
                 info["clock_offset_minutes"] = None
@@ -534,7 +549,7 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
     rn_min = float(cfg["midday_min_net_radiation"])
     signs = {v: _accepted(frame, flags, v) for v in ("rn", "g", "h", "le") if v in frame}
     for wk in week_labels:
-        sel = in_week[wk] & midday
+        sel = in_week[wk][midday[in_week[wk]]]
         med = {}
         for v, x in signs.items():
             vals = x[sel]
@@ -606,7 +621,7 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
             rh = np.where((flags["rh"].to_numpy() & flagbits.MISSING) != 0, np.nan, rh)
         precip = _accepted(frame, flags, "precip") if "precip" in frame else None
         for wk in week_labels:
-            sel = in_week[wk] & ~is_day
+            sel = in_week[wk][~is_day[in_week[wk]]]
             vals = rh[sel]
             vals = vals[np.isfinite(vals)]
             if vals.size < 4:

@@ -7,8 +7,6 @@ same folder, then :func:`os.replace`). It always has the same pages in the same 
 """
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 from matplotlib.backends.backend_pdf import PdfPages
@@ -46,21 +44,18 @@ def _render(site_dir: Path):
 
 
 def _write_pdf_atomically(path: Path, figures: list, *, title: str, subject: str) -> Path:
+    """Render into memory, then write beside the target and rename (towerflow.atomic)."""
+    import io
+
+    from towerflow.atomic import atomic_write_bytes
+
     path = Path(path)
-    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(fd)
-    try:
-        with style.report_style():
-            with PdfPages(tmp_name, metadata={"Title": title, "Subject": subject, "Creator": "towerflow"}) as pdf:
-                for fig in figures:
-                    pdf.savefig(fig)
-        os.replace(tmp_name, path)
-    except BaseException:
-        try:
-            os.unlink(tmp_name)
-        except OSError:
-            pass
-        raise
+    buffer = io.BytesIO()
+    with style.report_style():
+        with PdfPages(buffer, metadata={"Title": title, "Subject": subject, "Creator": "towerflow"}) as pdf:
+            for fig in figures:
+                pdf.savefig(fig)
+    atomic_write_bytes(path, buffer.getvalue())
     return path
 
 

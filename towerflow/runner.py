@@ -31,7 +31,7 @@ import pyarrow.parquet as pq
 
 from pipeline import flags as flagbits
 from pipeline.config import SiteConfig, load_site_config
-from pipeline.errors import ConfigError, InputError, TowerflowError
+from pipeline.errors import ConfigError, InputError
 from pipeline.ingest import assign_stream, read_logger_file
 from pipeline.outputs import column_metadata, json_ready
 from pipeline.process import STAGES, SiteProducts

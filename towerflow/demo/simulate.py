@@ -475,7 +475,6 @@ def simulate_site(
     index = pd.date_range(first, periods=n, freq=interval, name="timestamp_start")
     mid = index + interval / 2
     day = np.repeat(np.arange(days), m)
-    doy = np.asarray(mid.dayofyear, dtype=float)
     utc_hours = np.asarray(
         (mid.tz_convert("UTC") - mid.tz_convert("UTC").normalize()) / pd.Timedelta(hours=1)
     )
