@@ -81,6 +81,34 @@ def _time_network(network: Path, out: Path, workers: int) -> tuple[float, list[d
     return elapsed, results
 
 
+def _spin(n: int) -> float:
+    """Fixed CPU work (a pure Python loop), for the machine's own parallel ceiling."""
+    x = 0.0
+    for i in range(n):
+        x += i * 0.5
+    return x
+
+
+def machine_efficiency(workers: int, *, n: int = 6_000_000) -> float:
+    """Parallel efficiency of ``workers`` copies of fixed CPU work on this machine right now.
+
+    1.0 on idle cores; lower when other processes share them. towerflow's efficiency can be
+    read against this ceiling.
+    """
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(workers) as pool:
+        list(pool.map(_spin, [1000] * workers))  # start the workers
+        t0 = time.perf_counter()
+        for _ in range(workers):
+            _spin(n)
+        serial = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        list(pool.map(_spin, [n] * workers))
+        parallel = time.perf_counter() - t0
+    return serial / (workers * parallel)
+
+
 def _cpu_pressure_us() -> int | None:
     """Total microseconds in which some task waited for a CPU (Linux PSI), or None."""
     try:
@@ -104,7 +132,9 @@ def run(*, workers: int = 2, repeat: int = 1, data: Path | None = None, weekly: 
     per_site = {}
     pressure0 = _cpu_pressure_us()
     t_all = time.perf_counter()
+    ceiling = []
     for _ in range(repeat):
+        ceiling.append(machine_efficiency(workers))
         for mode, w in (("serial", 1), ("parallel", workers)):
             shutil.rmtree(out, ignore_errors=True)
             t, results = _time_network(network, out, w)
@@ -125,6 +155,7 @@ def run(*, workers: int = 2, repeat: int = 1, data: Path | None = None, weekly: 
         "load_average_1min": os.getloadavg()[0], "make_data_s": make_s,
         "serial_s": serial, "parallel_s": parallel,
         "efficiency": serial / (workers * parallel),
+        "machine_efficiency": statistics.median(ceiling),
         # CPU seconds the sites used (inside the workers): equal in both modes when running
         # in parallel adds no work; the share of the cores they got shows other load
         "serial_cpu_s": statistics.median(cpu["serial"]), "parallel_cpu_s": statistics.median(cpu["parallel"]),
@@ -158,6 +189,8 @@ def main() -> None:
     print(f"| serial (workers=1) | {r['serial_s']:.1f} s |")
     print(f"| parallel (workers={r['workers']}) | {r['parallel_s']:.1f} s |")
     print(f"| parallel efficiency serial / ({r['workers']} × parallel) | {100 * r['efficiency']:.0f} % |")
+    print(f"| same measure for fixed CPU work on this machine now (its ceiling) | "
+          f"{100 * r['machine_efficiency']:.0f} % |")
     print(f"| slowest site / sum of sites (serial) | {r['slowest_site_s']:.1f} s / {r['sum_site_s']:.1f} s |")
     print(f"| CPU seconds of the sites: serial / parallel | {r['serial_cpu_s']:.1f} s / {r['parallel_cpu_s']:.1f} s |")
     print(f"| share of the cores the sites got: serial (of 1) / parallel (of {r['workers']}) | "

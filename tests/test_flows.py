@@ -141,6 +141,13 @@ def test_change_log_new_week_history_entry_rule_override(grass_site):
     new_start = pd.Timestamp(log["new_period"][0])
     assert new_start > before["timestamp_start"].max()
     assert "new intervals" in md
+    assert log["previous_provisional_from"] is not None
+    for ch in log["changes"]:  # counts are consistent; periods are in local standard time
+        assert 0 <= ch["n_before_provisional"] <= ch["n_intervals"]
+        assert all(p.endswith("+01:00") for period in ch["periods"] for p in period)
+    changed_flag = [c for c in log["changes"] if c["column"] in ("le_flag", "h_flag")]
+    for ch in changed_flag:  # a new week re-tests only the despiking block it reaches (CONTRACT §4)
+        assert ch["n_before_provisional"] == 0
 
     # 2. a new [[history]] entry excluding LE and H for one day inside the record
     day = (before["timestamp_start"].iloc[0] + pd.Timedelta(days=5)).strftime("%Y-%m-%d")
@@ -158,6 +165,8 @@ def test_change_log_new_week_history_entry_rule_override(grass_site):
         assert pd.Timestamp(start) >= pd.Timestamp(day).tz_localize("Etc/GMT-1")
         assert pd.Timestamp(end) < pd.Timestamp(next_day).tz_localize("Etc/GMT-1")
     assert le_flag["n_intervals"] == 48  # one day of 30-min intervals (the site's interval)
+    # an exclusion flags the values (bit 64), it does not alter them (CONTRACT §4: as ingested)
+    assert not any(c["column"] in ("le", "h") for c in log["changes"])
     assert "invented test visit" in md
 
     # 3. a rule override: the upper LE limit lowered to the record's 90th percentile (bit 2)

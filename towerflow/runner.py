@@ -200,8 +200,10 @@ def change_log(previous: pd.DataFrame | None, current: pd.DataFrame, *, previous
         [[history]] entries and rule keys that differ, a rule-set change, a new version),
         ``new_intervals`` and ``new_period``, ``changes`` (per column: intervals changed,
         how many lie before the previous run's ``provisional_from``, and the periods, in
-        the site's local standard time), ``revised_before_provisional`` (intervals the
-        previous run called final that changed).
+        the site's local standard time; float columns also the largest change
+        ``max_abs_change`` in the column's unit and how many values became missing or
+        present), ``revised_before_provisional`` (intervals the previous run called final
+        that changed).
     """
     reasons = []
     if previous is None:
@@ -243,16 +245,21 @@ def change_log(previous: pd.DataFrame | None, current: pd.DataFrame, *, previous
             continue
         a = prev.loc[common, col].to_numpy()
         b = cur.loc[common, col].to_numpy()
+        extra = {}
         if a.dtype.kind == "f" or b.dtype.kind == "f":
             a = a.astype(float)
             b = b.astype(float)
             diff = ~((a == b) | (np.isnan(a) & np.isnan(b)) | np.isclose(a, b, rtol=1e-9, atol=1e-9, equal_nan=True))
+            both = diff & np.isfinite(a) & np.isfinite(b)
+            extra = {"max_abs_change": float(np.max(np.abs(b[both] - a[both]))) if both.any() else None,
+                     "n_now_missing": int((diff & np.isfinite(a) & ~np.isfinite(b)).sum()),
+                     "n_now_present": int((diff & ~np.isfinite(a) & np.isfinite(b)).sum())}
         else:
             diff = a != b
         if diff.any():
             revised |= diff & final_mask
             changes.append({"column": col, "n_intervals": int(diff.sum()),
-                            "n_before_provisional": int((diff & final_mask).sum()),
+                            "n_before_provisional": int((diff & final_mask).sum()), **extra,
                             "periods": _periods(common, diff, gap)})
     n_revised = int(revised.sum())
     if n_revised and not (config_changed or rules_changed):
@@ -301,14 +308,18 @@ def _changes_markdown(site: str, log: dict) -> str:
         if log.get("previous_provisional_from"):
             lines.append(f"- the previous run called values before {log['previous_provisional_from']} final; "
                          f"{log.get('revised_before_provisional', 0)} of them changed")
-        lines += ["", "| column | intervals changed | of them before the previous provisional_from | periods |",
-                  "|---|---|---|---|"]
+        lines += ["", "| column | intervals changed | of them before the previous provisional_from "
+                  "| largest change | now missing / now present | periods |",
+                  "|---|---|---|---|---|---|"]
         for ch in log["changes"]:
             periods = "; ".join(f"{a} to {b}" for a, b in ch.get("periods", [])[:6])
             if len(ch.get("periods", [])) > 6:
                 periods += f"; … ({len(ch['periods'])} periods)"
+            largest = ch.get("max_abs_change")
+            largest = f"{largest:.3g}" if isinstance(largest, float) else ""
+            presence = (f"{ch['n_now_missing']} / {ch['n_now_present']}" if "n_now_missing" in ch else "")
             lines.append(f"| {ch['column']} | {ch.get('n_intervals', '')} | {ch.get('n_before_provisional', '')} "
-                         f"| {periods or ch.get('note', '')} |")
+                         f"| {largest} | {presence} | {periods or ch.get('note', '')} |")
     elif not log.get("first_run"):
         lines += ["", "No earlier value changed."]
     return "\n".join(lines) + "\n"
