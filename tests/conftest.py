@@ -22,8 +22,12 @@ import pytest  # noqa: E402
 
 @pytest.fixture(scope="session")
 def prefect_server():
-    """One Prefect test server for the whole session (13–20 s to start here)."""
+    """One Prefect test server for the whole session (13–20 s to start here).
+
+    The harness gives up after 30 s by default; on a busy 2-core machine the server's
+    database migrations can take longer, so it may wait up to 120 s.
+    """
     from prefect.testing.utilities import prefect_test_harness
 
-    with prefect_test_harness():
+    with prefect_test_harness(server_startup_timeout=120):
         yield

@@ -195,19 +195,6 @@ def test_change_log_new_week_history_entry_rule_override(grass_site):
 # ---------------------------------------------------------------------------------------
 
 
-@pytest.fixture(scope="session")
-def prefect_server():
-    """conftest's session-wide Prefect test server, with a longer start-up timeout.
-
-    The harness gives up after 30 s of waiting by default; on a busy 2-core machine the
-    server (fresh SQLite, migrations) took longer than that, so we allow 120 s.
-    """
-    from prefect.testing.utilities import prefect_test_harness
-
-    with prefect_test_harness(server_startup_timeout=120):
-        yield
-
-
 @pytest.mark.prefect
 def test_site_flow_end_to_end(prefect_server, tmp_path, demo):
     """The site flow (a task per stage, state through files) equals the plain runner."""
