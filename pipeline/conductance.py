@@ -163,12 +163,7 @@ def describe_reject(bits: int) -> list[str]:
 # --------------------------------------------------------------------------------------
 def _accepted(frame: pd.DataFrame, flags: pd.DataFrame, var: str) -> np.ndarray | None:
     """``frame[var]`` as float with NaN where not accepted; None when the column is absent."""
-    if var not in frame.columns:
-        return None
-    values = frame[var].to_numpy(dtype=float, copy=True)
-    if var in flags.columns:
-        values[flags[var].to_numpy() != 0] = np.nan
-    return values
+    return flagbits.accepted_values(frame, flags, var)
 
 
 def _bool_column(frame: pd.DataFrame, name: str) -> np.ndarray | None:

@@ -62,3 +62,17 @@ def count_by_reason(flags: pd.Series) -> dict[str, int]:
     """How many values carry each reason (a value with two reasons counts twice)."""
     arr = flags.to_numpy()
     return {name: int(np.count_nonzero(arr & bit)) for bit, (name, _) in BITS.items()}
+
+
+def accepted_values(frame: pd.DataFrame, flags: pd.DataFrame | None, variable: str, *,
+                    ignore: int = 0) -> np.ndarray | None:
+    """``frame[variable]`` as float, NaN where a flag bit other than those in ``ignore`` is set.
+
+    Returns None when the frame has no such column.
+    """
+    if variable not in frame.columns:
+        return None
+    values = frame[variable].to_numpy(dtype=float, copy=True)
+    if flags is not None and variable in flags.columns:
+        values[(flags[variable].to_numpy() & ~ignore) != 0] = np.nan
+    return values

@@ -71,6 +71,7 @@ import pandas as pd
 from . import micromet
 from .closure import available_energy as _closure_available_energy
 from .errors import warn
+from .flags import accepted_values
 from .gapfill_drivers import FILLED_DRIVER_METHODS, fill_met_drivers, run_length, runs
 from .gapfill_penman import (aerodynamic_conductance_for_filling, energy_balance_residual_fill,
                              penman_monteith_fill)
@@ -110,12 +111,7 @@ class _Context:
 
 
 def _accepted(frame, flags, name):
-    if name not in frame.columns:
-        return None
-    v = frame[name].to_numpy(dtype=float, copy=True)
-    if name in flags.columns:
-        v[flags[name].to_numpy() != 0] = np.nan
-    return v
+    return accepted_values(frame, flags, name)
 
 
 def _similar(ctx: _Context, target, to_fill):

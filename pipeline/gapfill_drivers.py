@@ -33,6 +33,7 @@ from scipy import stats
 
 from . import micromet, solar
 from .errors import TowerflowError, warn
+from .flags import accepted_values
 from .gapfill_similar import SimilarityStep, diurnal_steps, fill_similar_conditions
 
 __all__ = ["fill_met_drivers", "runs", "run_length", "FILLED_DRIVER_METHODS"]
@@ -166,12 +167,7 @@ def _fill_series(x, *, index, interval, max_interp_steps, widest, nb_arrays, nb_
 
 
 def _accepted(frame, flags, name):
-    if name not in frame.columns:
-        return None
-    values = frame[name].to_numpy(dtype=float, copy=True)
-    if name in flags.columns:
-        values[flags[name].to_numpy() != 0] = np.nan
-    return values
+    return accepted_values(frame, flags, name)
 
 
 def _vapour_pressure_of(table) -> np.ndarray | None:

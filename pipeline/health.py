@@ -111,10 +111,7 @@ def _minutes(value) -> float:
 
 def _accepted(frame, flags, var, *, ignore: int = 0) -> np.ndarray:
     """Values of ``var`` whose flags carry no bit other than those in ``ignore``."""
-    values = frame[var].to_numpy(dtype=float, copy=True)
-    if flags is not None and var in flags:
-        values[(flags[var].to_numpy() & ~ignore) != 0] = np.nan
-    return values
+    return flagbits.accepted_values(frame, flags, var, ignore=ignore)
 
 
 #: the clock check reads radiation the consistency tests rejected: the clear-sky envelope
