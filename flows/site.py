@@ -50,11 +50,14 @@ def save_state(state, folder: Path) -> Path:
         d = daily.copy()
         d.index = pd.to_datetime(pd.Index(d.index))
         d.to_parquet(folder / f"daily-{name}.parquet")
+    for name, nb in state.neighbours.items():
+        nb.to_parquet(folder / f"neighbour-{name}.parquet")
     from pipeline.outputs import json_ready
 
     meta = {"config": str(state.cfg.path), "interval_minutes": state.site.interval_minutes,
             "rules": state.rules, "summary": state.summary, "warnings": state.warnings,
-            "columns": list(state.columns), "daily": list(state.daily)}
+            "columns": list(state.columns), "daily": list(state.daily),
+            "neighbours": list(state.neighbours)}
     (folder / "state.json").write_text(json.dumps(json_ready(meta)))
     return folder
 
@@ -78,6 +81,8 @@ def load_state(folder: Path):
         state.columns[name] = pd.read_parquet(folder / f"columns-{name}.parquet")
     for name in meta["daily"]:
         state.daily[name] = pd.read_parquet(folder / f"daily-{name}.parquet")
+    for name in meta.get("neighbours", []):
+        state.neighbours[name] = pd.read_parquet(folder / f"neighbour-{name}.parquet")
     return state
 
 

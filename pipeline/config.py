@@ -138,6 +138,9 @@ class SiteConfig:
     history: tuple[HistoryEntry, ...] = ()
     qc: dict = field(default_factory=lambda: {"rules": "standard"})
     conductance: dict = field(default_factory=lambda: {"aerodynamic": "ustar"})
+    #: extension ``[gapfill] neighbours = ["site-id", ...]``: nearby sites whose accepted
+    #: meteorology (from their latest outputs in the same DIR) fills this site's driver gaps
+    gapfill: dict = field(default_factory=dict)
     raw: dict = field(default_factory=dict)  # the parsed TOML, for extensions
 
 
@@ -192,7 +195,7 @@ IRGA_TYPES: tuple[str, ...] = ("open-path", "closed-path")
 TIMESTAMP_MARKS: tuple[str, ...] = ("start", "end")
 AERODYNAMIC_METHODS: tuple[str, ...] = ("ustar", "log-profile")
 
-_TOP_KEYS = ("site", "input", "history", "qc", "conductance")
+_TOP_KEYS = ("site", "input", "history", "qc", "conductance", "gapfill")
 _SITE_KEYS = {
     # key: required
     "id": True, "name": False, "latitude": True, "longitude": True, "elevation_m": True,
@@ -208,6 +211,7 @@ _HISTORY_KEYS = ("start", "end", "reason", "correct", "exclude", "irrigation", *
 _CORRECT_KEYS = ("scale", "offset", "shift_minutes")
 _QC_KEYS = ("rules", "override")
 _CONDUCTANCE_KEYS = ("aerodynamic", "kb_inverse")
+_GAPFILL_KEYS = ("neighbours",)
 _NETWORK_KEYS = ("name", "rules", "sites")
 _NETWORK_SITE_KEYS = ("config", "data")
 
@@ -670,6 +674,20 @@ def _parse_conductance(raw, *, file) -> dict:
     return out
 
 
+def _parse_gapfill(raw, *, file, site_id: str) -> dict:
+    tbl = _table(raw, file=file, key="gapfill")
+    _unknown_keys(tbl, _GAPFILL_KEYS, file=file, prefix="gapfill.")
+    neighbours = tbl.get("neighbours", [])
+    if not isinstance(neighbours, list):
+        raise _err(file, "gapfill.neighbours", "must be a list of site ids")
+    for i, nid in enumerate(neighbours):
+        if not isinstance(nid, str) or not _re.fullmatch(SITE_ID_PATTERN, nid):
+            raise _err(file, f"gapfill.neighbours[{i}]", f"must be a site id matching {SITE_ID_PATTERN}, got {nid!r}")
+        if nid == site_id:
+            raise _err(file, f"gapfill.neighbours[{i}]", "a site cannot be its own neighbour")
+    return {"neighbours": list(dict.fromkeys(neighbours))}
+
+
 def load_site_config(path) -> SiteConfig:
     """Read and validate a site TOML file (CONTRACT §2).
 
@@ -718,6 +736,7 @@ def load_site_config(path) -> SiteConfig:
     history = _parse_history(raw.get("history", []), file=path, site=site, mapped=mapped)
     qc = _parse_qc(raw.get("qc", {}), file=path)
     conductance = _parse_conductance(raw.get("conductance", {}), file=path)
+    gapfill = _parse_gapfill(raw.get("gapfill", {}), file=path, site_id=site.id)
 
     if site.interval_minutes is None:
         declared = [s.interval_minutes for s in streams]
@@ -732,7 +751,7 @@ def load_site_config(path) -> SiteConfig:
                                f"stream {s.name!r} at {d} min does not divide {longest} min: set the site interval")
             site = _replace(site, interval_minutes=longest)
     return SiteConfig(path=path, sha256=sha, site=site, inputs=streams, history=history,
-                      qc=qc, conductance=conductance, raw=raw)
+                      qc=qc, conductance=conductance, gapfill=gapfill, raw=raw)
 
 
 def load_network_config(path) -> NetworkConfig:

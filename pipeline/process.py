@@ -34,6 +34,9 @@ class SiteState:
     daily: dict[str, pd.DataFrame] = field(default_factory=dict)
     summary: dict = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
+    #: nearby sites' accepted meteorology for driver filling: {site id: frame with
+    #: ta/rg/vpd/rh and their ``_flag`` columns on a tz-aware index}
+    neighbours: dict[str, pd.DataFrame] = field(default_factory=dict)
 
     @property
     def site(self):
@@ -112,7 +115,7 @@ def stage_filling(state: SiteState) -> SiteState:
     closure = state.columns.get("closure")
     if closure is not None and "available_energy" in closure and "available_energy" not in frame:
         frame = frame.assign(available_energy=closure["available_energy"])
-    result = fill_gaps(frame, state.flags, state.site, state.rules)
+    result = fill_gaps(frame, state.flags, state.site, state.rules, neighbours=state.neighbours or None)
     state.columns["filling"] = result.columns
     state.summary.update(result.summary)
     state.warnings.extend(result.warnings)

@@ -164,3 +164,53 @@ def test_totals_and_daily_uncertainty(grassland_run):
     assert (totals.loc[ok, "et_mm"] <= totals.loc[ok, "et_mm_p975"]).all()
     daily = pd.read_parquet(site_dir / "daily.parquet")
     assert "et_mm_sd" in daily.columns
+
+
+def test_neighbour_site_fills_met_driver_gaps(tmp_path):
+    """[gapfill] neighbours: the forest's latest outputs fill the grassland's air-temperature gap,
+    and the outputs say which site filled it."""
+    network = write_demo_network(tmp_path / "raw", days=14, seed=5)
+    sites = network.parent / "sites"
+    out = tmp_path / "out"
+    forest_files = sorted((network.parent / "raw" / "demo-ridge-forest").glob("*.csv"))
+    assert main(["run", str(sites / "demo-ridge-forest.toml"), *map(str, forest_files),
+                 "--out", str(out), "--no-report"]) == 0
+    grass_cfg = tmp_path / "grass.toml"
+    grass_cfg.write_text((sites / "demo-upland-grassland.toml").read_text()
+                         + '\n[gapfill]\nneighbours = ["demo-ridge-forest"]\n')
+    grass_files = sorted((network.parent / "raw" / "demo-upland-grassland").glob("*.csv"))
+    # blank a day of air temperature in the first week's file: a gap the neighbour can fill
+    first = grass_files[0].read_text().splitlines()
+    header_lines = 1
+    edited = tmp_path / grass_files[0].name
+    cols = first[0].split(",")
+    ta_col = cols.index("air_temperature")  # the grassland logger's column (demo site TOML)
+    rows = []
+    for k, line in enumerate(first):
+        if header_lines <= k < header_lines + 48 * 3 and k > 48:
+            cells = line.split(",")
+            cells[ta_col] = "-9999"
+            line = ",".join(cells)
+        rows.append(line)
+    edited.write_text("\n".join(rows) + "\n")
+    assert main(["run", str(grass_cfg), str(edited), *map(str, grass_files[1:]),
+                 "--out", str(out), "--no-report"]) == 0
+    df = pd.read_parquet(out / "demo-upland-grassland" / "intervals.parquet")
+    assert "ta_fill_source" in df.columns
+    assert (df["ta_fill_source"].astype(str) == "demo-ridge-forest").any()
+
+
+@pytest.mark.parametrize("value, key", [('["../x"]', "gapfill.neighbours[0]"),
+                                        ('"demo-ridge-forest"', "gapfill.neighbours"),
+                                        ('["demo-upland-grassland"]', "gapfill.neighbours[0]")])
+def test_bad_neighbour_list_is_a_config_error(tmp_path, value, key):
+    from pipeline.config import load_site_config
+    from pipeline.errors import ConfigError
+
+    network = write_demo_network(tmp_path / "raw", days=7, seed=1)
+    cfg = tmp_path / "grass.toml"
+    cfg.write_text((network.parent / "sites" / "demo-upland-grassland.toml").read_text()
+                   + f"\n[gapfill]\nneighbours = {value}\n")
+    with pytest.raises(ConfigError) as info:
+        load_site_config(cfg)
+    assert info.value.key == key and "grass.toml" in str(info.value)

@@ -110,7 +110,11 @@ def write_parquet(path: Path, frame: pd.DataFrame, *, file_metadata: dict, extra
     })
     table = table.cast(schema)
     sink = pa.BufferOutputStream()
-    pq.write_table(table, sink, compression="zstd")
+    # dictionary encoding for the text, integer, flag and time columns only: float columns
+    # (measured values, nearly all distinct) would fill the dictionary and fall back to plain
+    # encoding anyway, after the work; the values read back are the same
+    dictionary = [f.name for f in table.schema if not pa.types.is_floating(f.type)]
+    pq.write_table(table, sink, compression="zstd", use_dictionary=dictionary)
     atomic_write_bytes(path, sink.getvalue().to_pybytes())
 
 
@@ -325,6 +329,34 @@ def _changes_markdown(site: str, log: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
+_NEIGHBOUR_COLUMNS = ("ta", "rg", "vpd", "rh")
+
+
+def load_neighbours(cfg: SiteConfig, out_dir: Path) -> tuple[dict[str, pd.DataFrame], list[str]]:
+    """The accepted meteorology of the site's ``[gapfill] neighbours`` from their latest outputs.
+
+    Each neighbour's ``DIR/<id>/intervals.parquet`` (its most recent run in the same output
+    folder) gives ta, rg, vpd and rh with their flags. A neighbour without outputs yet is
+    skipped with a note; its values then join the filling from its next run on.
+    """
+    frames: dict[str, pd.DataFrame] = {}
+    notes: list[str] = []
+    for nid in cfg.gapfill.get("neighbours", []):
+        path = site_output_dir(out_dir, nid) / "intervals.parquet"
+        if not path.exists():
+            notes.append(f"gapfill.neighbours: {nid} has no outputs in {out_dir} yet; not used in this run")
+            continue
+        try:
+            names = set(pq.read_schema(path).names)
+            wanted = [c for v in _NEIGHBOUR_COLUMNS for c in (v, f"{v}_flag") if c in names]
+            table = pd.read_parquet(path, columns=["timestamp_start", *wanted])
+        except Exception as exc:  # a broken neighbour output must not stop this site
+            notes.append(f"gapfill.neighbours: {path} could not be read ({type(exc).__name__}); not used")
+            continue
+        frames[nid] = table.set_index("timestamp_start")
+    return frames, notes
+
+
 @dataclass
 class PreparedSite:
     """A site after its files are parsed and merged (in a staged store) and the working frame built."""
@@ -376,6 +408,8 @@ def prepare_site(config_path, files, out_dir, *, supersede: bool = False,
         bad = {str(item.path): int(item.n_bad_cells) for item in ingested}
         report["bad_cells"] = bad
         report["n_bad_cells"] = int(sum(bad.values()))
+    state.neighbours, notes = load_neighbours(cfg, Path(out_dir))
+    state.warnings.extend(notes)
     return PreparedSite(cfg=cfg, rules=rules, site_dir=site_dir, store=store, pending=pending,
                         state=state, ingest_warnings=warnings)
 
