@@ -25,8 +25,23 @@ Fill methods (``le_fill_method``, ``h_fill_method``)
     mean at the same time of day ±1 h over the same day, ±1 d, then growing windows.
 ``penman_monteith_conductance``
     Penman–Monteith with gs from a Jarvis-type response fitted in moving windows (by day).
+``penman_monteith_wet_canopy``
+    LE in gaps caused by wetness (LE carries the wet bit, or QC's ``rain_wetted`` is true and
+    LE is not accepted) where no accepted wet analogue lies within ±7 d (the site rejects LE
+    when wet, e.g. an open-path analyser in rain): the evaporation of intercepted water,
+    c · Penman–Monteith with zero surface resistance (gs → ∞; Monteith 1965; Rutter et al.
+    1971 [from memory]) from the interval's own filled drivers and ga, with the site's
+    moving-window closure ratio c, while the canopy store (``[gapfill]
+    wet_canopy_storage_*_mm`` by canopy height, filled by rain, emptied by this rate)
+    holds water; where it runs dry within the interval the dry fill is blended in by the
+    wet fraction, once empty the dry fill stays. Applied over either LE strategy, after the
+    cross-validated choice (accepted intervals are never wet gaps, so the cross-validation
+    cannot rank it). Quality ``fair``, ``poor`` where rg, ta or vpd were filled or ga does
+    not rest on a measured u*; ``_fill_sd`` is the spread of the dry fill at that interval
+    (the dry Penman–Monteith window residual sd, or the similar-conditions sd).
 ``energy_balance_residual``
-    H = c · A − LE with the site's moving-window closure ratio c (by day).
+    H = c · A − LE with the site's moving-window closure ratio c (by day); in wet-canopy
+    gaps it uses the wet-canopy LE.
 ``not_filled``
     no estimate: the gap is longer than ``[gapfill] max_fill_length`` (``<flux>_in_long_gap``),
     or the series has no accepted value at all.
@@ -58,6 +73,9 @@ References
 ----------
 Reichstein, M. et al. (2005). Global Change Biology 11, 1424–1439.
 Falge, E. et al. (2001). Agricultural and Forest Meteorology 107, 43–69.
+Monteith, J. L. (1965). Evaporation and environment. Symp. Soc. Exp. Biol. 19, 205–234.
+Rutter, A. J. et al. (1971). A predictive model of rainfall interception in forests, 1.
+Agricultural Meteorology 9, 367–384 [from memory].
 Moffat, A. M. et al. (2007). Comprehensive comparison of gap-filling techniques for eddy
 covariance net carbon fluxes. Agricultural and Forest Meteorology 147, 209–232.
 """
@@ -73,13 +91,15 @@ from .closure import available_energy as _closure_available_energy
 from .errors import warn
 from .flags import accepted_values
 from .gapfill_drivers import FILLED_DRIVER_METHODS, fill_met_drivers, run_length, runs
-from .gapfill_penman import (aerodynamic_conductance_for_filling, energy_balance_residual_fill,
-                             penman_monteith_fill)
+from . import flags as flagbits
+from .gapfill_penman import (aerodynamic_conductance_for_filling, closure_ratio,
+                             energy_balance_residual_fill, penman_monteith_fill, wet_canopy_fill,
+                             wet_canopy_storage)
 from .gapfill_similar import fill_similar_conditions, lower_quality, similarity_steps
 from .rules import duration, standard_rules
 from .stage import StageResult
 
-__all__ = ["fill_gaps", "gapfill_rules", "LE_STRATEGIES", "H_STRATEGIES"]
+__all__ = ["fill_gaps", "gapfill_rules", "wet_gaps", "LE_STRATEGIES", "H_STRATEGIES"]
 
 LE_STRATEGIES = ("similar_conditions", "penman_monteith_conductance")
 H_STRATEGIES = ("similar_conditions", "energy_balance_residual")
@@ -397,6 +417,11 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
     # ---- the fill itself ---------------------------------------------------------------------
     cols = {}
     (le_est, le_sd, le_m, le_q), le_info = _fill_le(ctx, choice["le"]["chosen"], obs["le"], to_fill["le"])
+    wet_info = {}
+    if _truthy(g.get("wet_canopy_fill", True)) and to_fill["le"].any():
+        wet_res, wet_info = _wet_canopy(ctx, frame, flags, site, rules, obs, acc, to_fill["le"],
+                                        le_est, le_sd)
+        le_est, le_sd, le_m, le_q = _overlay((le_est, le_sd, le_m, le_q), wet_res)
     le_out = _assemble("le", obs["le"], acc["le"], le_est, le_sd, le_m, le_q)
     (h_est, h_sd, h_m, h_q), h_info = _fill_h(ctx, choice["h"]["chosen"], obs["h"], to_fill["h"],
                                               obs["le"], le_out[0], le_out[3])
@@ -442,10 +467,87 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
         choice[flux]["method_counts"] = _counts(cols[f"{flux}_fill_method"])
     if le_info:
         choice["le"]["penman_monteith_fit"] = le_info
+    if wet_info:
+        choice["le"]["wet_canopy"] = wet_info
     if h_info:
         choice["h"]["closure_ratio"] = h_info
     daily = _daily(index, long_gap)
     return StageResult(columns=columns, summary=summary, warnings=warnings_out, daily=daily)
+
+
+def _truthy(value) -> bool:
+    return value if isinstance(value, bool) else str(value).strip().lower() in ("true", "1", "yes")
+
+
+def wet_gaps(frame: pd.DataFrame, flags: pd.DataFrame, le_accepted, to_fill, *, window_intervals: int,
+             min_analogues: int) -> np.ndarray:
+    """LE gaps caused by wetness where no accepted wet analogue is within reach.
+
+    A gap qualifies where LE carries the wet bit (:data:`pipeline.flags.WET`) or QC's
+    ``rain_wetted`` is true, and fewer than ``min_analogues`` accepted LE values under
+    ``rain_wetted`` lie within ±``window_intervals`` (the site rejects LE when wet, as an
+    open-path analyser does; at a closed-path site LE in rain is measured and the
+    similar-conditions look-up has wet analogues, so its gaps are left to it).
+    """
+    n = le_accepted.size
+    wet_bit = np.zeros(n, dtype=bool)
+    if "le" in flags.columns:
+        wet_bit = (flags["le"].to_numpy().astype(np.int64) & int(flagbits.WET)) != 0
+    if "rain_wetted" in frame.columns:
+        wetted = frame["rain_wetted"].astype("boolean").fillna(False).to_numpy(dtype=bool)
+    else:
+        wetted = np.zeros(n, dtype=bool)
+    candidate = to_fill & ~le_accepted & (wet_bit | wetted)
+    if not candidate.any():
+        return candidate
+    cum = np.concatenate(([0], np.cumsum(le_accepted & wetted)))
+    i = np.arange(n)
+    lo = np.clip(i - window_intervals, 0, n)
+    hi = np.clip(i + window_intervals + 1, 0, n)
+    analogues = cum[hi] - cum[lo]
+    return candidate & (analogues < min_analogues)
+
+
+def _wet_canopy(ctx: _Context, frame, flags, site, rules, obs, acc, to_fill, le_est, le_sd):
+    """The wet-canopy fill (:func:`pipeline.gapfill_penman.wet_canopy_fill`) on wet gaps."""
+    g = ctx.rules
+    n = len(ctx.index)
+    first = ctx.steps[0].window if ctx.steps else pd.Timedelta(days=7)
+    wet_gap = wet_gaps(frame, flags, acc["le"], to_fill, window_intervals=int(first // ctx.interval),
+                       min_analogues=int(g["min_similar_samples"]))
+    empty = (np.full(n, np.nan), np.full(n, np.nan), np.full(n, "", dtype=object),
+             np.full(n, "", dtype=object))
+    if not wet_gap.any():
+        return empty, {"intervals": 0, "wet_gap_intervals": 0}
+    wet_rules = dict(standard_rules().get("wet", {}))
+    wet_rules.update((rules or {}).get("wet", {}) or {})
+    precip = _accepted(frame, flags, "precip")
+    precip = np.full(n, np.nan) if precip is None else precip
+    with np.errstate(invalid="ignore"):
+        rainy = precip > float(wet_rules.get("rain_above", 0.0))
+    irrigated = frame["irrigated"].astype("boolean").fillna(False).to_numpy(dtype=bool) \
+        if "irrigated" in frame.columns else np.zeros(n, dtype=bool)
+    refill = np.where(irrigated, np.inf, np.where(rainy, precip, 0.0))  # irrigation depth unknown: fills
+    hc = frame["canopy_height_m"].to_numpy(dtype=float) if "canopy_height_m" in frame.columns \
+        else np.full(n, float(site.canopy_height_m))
+    hc = np.where(np.isfinite(hc), hc, float(site.canopy_height_m))
+    storage = wet_canopy_storage(hc, short_mm=float(g["wet_canopy_storage_short_mm"]),
+                                 tall_mm=float(g["wet_canopy_storage_tall_mm"]),
+                                 tall_height_m=float(g["wet_canopy_tall_height_m"]))
+    c, c_info = closure_ratio(obs["h"], obs["le"], ctx.available_energy, ctx.is_day, index=ctx.index,
+                              window=duration(g["conductance_window"]), step=duration(g["conductance_step"]),
+                              min_samples=int(g["conductance_min_samples"]))
+    if c is None:  # too little accepted H and LE for a closure ratio: the closed rate
+        c = np.ones(n)
+    est, sd, method, quality, info = wet_canopy_fill(
+        le_est, le_sd, wet_gap, wetting=rainy | irrigated, refill_mm=refill, storage_mm=storage,
+        ta=ctx.drivers["ta"], vpd=ctx.drivers["vpd"], p_air=ctx.p_air,
+        available_energy=ctx.available_energy, ga=ctx.ga, ga_source=ctx.ga_source, closure=c,
+        snow=ctx.snow, drivers_filled=ctx.drivers_filled,
+        interval_seconds=ctx.interval.total_seconds())
+    info["closure_ratio"] = c_info["ratio"]
+    info["storage_mm"] = float(np.median(storage))
+    return (est, sd, method, quality), info
 
 
 def _widest(g: dict) -> pd.Timedelta:

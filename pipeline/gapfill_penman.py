@@ -30,8 +30,16 @@ accepted daytime intervals of the moving window (the site's own closure), by day
 Its ``_fill_sd`` is the standard deviation of the residual over those intervals. The
 quality is ``good`` where LE was measured, otherwise that of the LE fill lowered one class.
 
+**Wet canopy.** ``penman_monteith_wet_canopy`` (:func:`wet_canopy_fill`): in LE gaps caused
+by wetness at a site that rejects LE when wet, LE = c · Penman–Monteith with gs → ∞ (the
+evaporation of intercepted water; Monteith 1965, Rutter et al. 1971) while a canopy store
+of capacity S (by canopy height) filled by rain still holds water; ``_fill_sd`` is the dry
+fill's spread at that interval.
+
 References
 ----------
+Rutter, A. J., Kershaw, K. A., Robins, P. C. and Morton, A. J. (1971). A predictive model
+of rainfall interception in forests, 1. Agricultural Meteorology 9, 367–384 [from memory].
 Monteith, J. L. (1965). Evaporation and environment. Symp. Soc. Exp. Biol. 19, 205–234.
 Jarvis, P. G. (1976). The interpretation of the variations in leaf water potential and
 stomatal conductance found in canopies in the field. Phil. Trans. R. Soc. B 273, 593–610.
@@ -53,6 +61,10 @@ __all__ = [
     "fit_conductance_response",
     "penman_monteith_fill",
     "energy_balance_residual_fill",
+    "closure_ratio",
+    "wet_canopy_storage",
+    "intercepted_water_fraction",
+    "wet_canopy_fill",
 ]
 
 # bounds of the observed gs entering the fit, m s-1 (common practice: canopy gs rarely
@@ -284,6 +296,60 @@ def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, availabl
     return est, sd, method, quality, info
 
 
+def _closure_sample(h_obs, le_obs, a, is_day):
+    """Daytime intervals with H, LE and a meaningful available energy accepted."""
+    with np.errstate(invalid="ignore"):
+        return is_day & np.isfinite(h_obs) & np.isfinite(le_obs) & np.isfinite(a) & (a > _MIN_A_FIT)
+
+
+def closure_ratio(h_obs, le_obs, available_energy, is_day, *, index, window, step, min_samples):
+    """The site's moving-window closure ratio c = Σ(H + LE) / ΣA for every interval.
+
+    Parameters
+    ----------
+    h_obs, le_obs : numpy.ndarray
+        Accepted H and LE [W m-2] (NaN elsewhere).
+    available_energy : numpy.ndarray
+        A [W m-2] (NaN where not accepted).
+    is_day : numpy.ndarray of bool
+    index : pandas.DatetimeIndex
+    window, step : pandas.Timedelta
+        Moving window and the blocks sharing one ratio (as for the conductance fit).
+    min_samples : int
+        Fewest daytime intervals with H, LE and A accepted for a window's ratio; windows
+        with fewer take the site-wide ratio.
+
+    Returns
+    -------
+    c : numpy.ndarray or None
+        Closure ratio [-] per interval; None when the whole record has fewer than
+        ``min_samples`` such intervals.
+    info : dict
+        ``ratio`` (site-wide) and ``n`` (intervals used).
+
+    References
+    ----------
+    Wilson, K. et al. (2002). Energy balance closure at FLUXNET sites. Agric. For.
+    Meteorol. 113, 223–243 (the ratio Σ(H + LE) / Σ(Rn − G)).
+    """
+    a = available_energy
+    both = _closure_sample(h_obs, le_obs, a, is_day)
+    info = {"ratio": None, "n": int(both.sum())}
+    if both.sum() < min_samples:
+        return None, info
+    site_c = float(np.sum(h_obs[both] + le_obs[both]) / np.sum(a[both]))
+    info["ratio"] = site_c
+    labels, lo, hi = conductance_blocks(index, step, window)
+    # window sums by cumulative sums: vectorised over blocks
+    num = np.concatenate(([0.0], np.cumsum(np.where(both, h_obs + le_obs, 0.0))))
+    den = np.concatenate(([0.0], np.cumsum(np.where(both, a, 0.0))))
+    cnt = np.concatenate(([0], np.cumsum(both)))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        c_block = (num[hi] - num[lo]) / (den[hi] - den[lo])
+    c_block = np.where((cnt[hi] - cnt[lo]) >= min_samples, c_block, site_c)
+    return c_block[labels], info
+
+
 def energy_balance_residual_fill(h_obs, le_obs, le_filled, le_quality, to_fill, *, index,
                                  available_energy, is_day, window, step, min_samples):
     """H = c · A − LE_filled with the closure ratio c of the moving window (daytime only).
@@ -318,21 +384,13 @@ def energy_balance_residual_fill(h_obs, le_obs, le_filled, le_quality, to_fill, 
     method = np.full(n, "", dtype=object)
     quality = np.full(n, "", dtype=object)
     a = available_energy
-    both = is_day & np.isfinite(h_obs) & np.isfinite(le_obs) & np.isfinite(a) & (a > _MIN_A_FIT)
-    info = {"ratio": None, "n": int(both.sum())}
-    if both.sum() < min_samples:
+    c, info = closure_ratio(h_obs, le_obs, available_energy, is_day, index=index, window=window,
+                            step=step, min_samples=min_samples)
+    if c is None:
         return est, sd, method, quality, info
-    site_c = float(np.sum(h_obs[both] + le_obs[both]) / np.sum(a[both]))
-    info["ratio"] = site_c
+    both = _closure_sample(h_obs, le_obs, a, is_day)
     labels, lo, hi = conductance_blocks(index, step, window)
-    # window sums by cumulative sums: vectorised over blocks
-    num = np.concatenate(([0.0], np.cumsum(np.where(both, h_obs + le_obs, 0.0))))
-    den = np.concatenate(([0.0], np.cumsum(np.where(both, a, 0.0))))
     cnt = np.concatenate(([0], np.cumsum(both)))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        c_block = (num[hi] - num[lo]) / (den[hi] - den[lo])
-    c_block = np.where((cnt[hi] - cnt[lo]) >= min_samples, c_block, site_c)
-    c = c_block[labels]
     resid = np.where(both, h_obs - (c * a - le_obs), np.nan)
     r1 = np.concatenate(([0.0], np.cumsum(np.where(both, resid, 0.0))))
     r2 = np.concatenate(([0.0], np.cumsum(np.where(both, resid * resid, 0.0))))
@@ -351,4 +409,136 @@ def energy_balance_residual_fill(h_obs, le_obs, le_filled, le_quality, to_fill, 
     q = np.where(le_quality == "measured", "good", le_quality).astype(object)
     lowered = lower_quality(q, le_quality != "measured")
     quality[apply] = lowered[apply]
+    return est, sd, method, quality, info
+
+
+def wet_canopy_storage(canopy_height_m, *, short_mm, tall_mm, tall_height_m):
+    """Canopy water storage capacity [mm] by canopy height: ``tall_mm`` from ``tall_height_m`` up."""
+    hc = np.asarray(canopy_height_m, dtype=float)
+    return np.where(np.isfinite(hc) & (hc >= tall_height_m), float(tall_mm), float(short_mm))
+
+
+def intercepted_water_fraction(wetting, refill_mm, evaporation_mm, storage_mm):
+    """Share of each interval during which the canopy holds intercepted water.
+
+    A bucket of capacity ``storage_mm`` is filled by each wetting interval (rain up to the
+    free capacity; an interval with ``refill_mm`` = inf, e.g. irrigation of unknown depth,
+    fills it) and emptied by the wet-canopy evaporation (Rutter et al. 1971 [from memory],
+    without the free throughfall or drainage terms: all rain is held until the store is
+    full, an upper bound on the store).
+
+    Parameters
+    ----------
+    wetting : numpy.ndarray of bool
+        Intervals of rain or irrigation.
+    refill_mm : numpy.ndarray
+        Water reaching the canopy in the interval [mm] (NaN counts as 0; inf fills the store).
+    evaporation_mm : numpy.ndarray
+        Potential evaporation of the wet canopy in the interval [mm] (≥ 0; NaN counts as 0,
+        i.e. the store is not emptied where the rate is unknown).
+    storage_mm : numpy.ndarray
+        Storage capacity [mm] per interval.
+
+    Returns
+    -------
+    numpy.ndarray
+        Wet fraction in [0, 1]: 1 where the store outlasts the interval, the share of the
+        interval's potential evaporation the remaining store supplies where it runs dry, 0
+        where the store is empty.
+    """
+    n = wetting.size
+    frac = np.zeros(n)
+    refill = np.where(np.isfinite(refill_mm) | np.isposinf(refill_mm), refill_mm, 0.0)
+    evap = np.where(np.isfinite(evaporation_mm), np.maximum(evaporation_mm, 0.0), 0.0)
+    cap = np.asarray(storage_mm, dtype=float)
+    store = 0.0
+    # sequential by nature (the store carries over), but only from the first wetting on and
+    # with scalar work per interval (a few ms per year of half-hours)
+    first = np.flatnonzero(wetting)
+    for i in range(int(first[0]) if first.size else n, n):
+        if wetting[i]:
+            store = min(cap[i], store + refill[i])
+        if store <= 0.0:
+            continue
+        e = evap[i]
+        frac[i] = 1.0 if e <= store else store / e
+        store = max(store - e, 0.0)
+    return frac
+
+
+def wet_canopy_fill(base_estimate, base_sd, wet_gap, *, wetting, refill_mm, storage_mm, ta, vpd,
+                    p_air, available_energy, ga, ga_source, closure, snow, drivers_filled,
+                    interval_seconds):
+    """LE in wet-canopy gaps: evaporation of intercepted water at the wet-surface rate.
+
+    Evaporation from a wet canopy proceeds at the Penman–Monteith rate with zero surface
+    resistance (gs → ∞; Monteith 1965; Rutter et al. 1971 [from memory]) while intercepted
+    water remains. The rate is computed from the interval's own (filled) drivers and ga and
+    scaled by the site's closure ratio c, so that the fill matches the site's unclosed
+    measured fluxes. The store (:func:`intercepted_water_fraction`) is emptied by the
+    unscaled (energy-closed) rate, the water that actually evaporates. Where the store runs
+    dry within an interval, the fill blends the wet rate and ``base_estimate`` (the dry
+    fill) by the wet fraction; where it is empty the dry fill stays. Only ``wet_gap``
+    intervals are filled, so the wet period ends at the end of QC's wet window or when the
+    store is empty, whichever comes first.
+
+    Parameters
+    ----------
+    base_estimate, base_sd : numpy.ndarray
+        The dry fill and its spread [W m-2] (similar conditions or the dry Penman–Monteith
+        response, whichever strategy the site chose).
+    wet_gap : numpy.ndarray of bool
+        Intervals that are gaps because of wetness with no accepted wet analogue.
+    wetting, refill_mm, storage_mm
+        See :func:`intercepted_water_fraction`.
+    ta, vpd, p_air, available_energy, ga : numpy.ndarray
+        Complete drivers [degC, kPa, kPa, W m-2, m s-1].
+    ga_source : numpy.ndarray of object
+        From :func:`aerodynamic_conductance_for_filling`.
+    closure : numpy.ndarray
+        Closure ratio c per interval [-] (:func:`closure_ratio`).
+    snow : numpy.ndarray of bool
+        Snow or frozen conditions: not filled here (no liquid intercepted water).
+    drivers_filled : dict of str to numpy.ndarray of bool
+    interval_seconds : float
+
+    Returns
+    -------
+    estimate, sd : numpy.ndarray
+        NaN where this method does not apply.
+    method, quality : numpy.ndarray of object
+        ``penman_monteith_wet_canopy``; ``fair``, ``poor`` where rg, ta or vpd were filled or
+        ga does not rest on a measured u*.
+    info : dict
+        Intervals filled and the wet-canopy share of their LE.
+    """
+    n = wet_gap.size
+    est = np.full(n, np.nan)
+    sd = np.full(n, np.nan)
+    method = np.full(n, "", dtype=object)
+    quality = np.full(n, "", dtype=object)
+    le_wet_closed = np.asarray(micromet.penman_monteith(available_energy, ta, vpd, p_air, ga, np.inf),
+                               dtype=float)
+    evap = np.asarray(micromet.evaporation_mm(np.maximum(np.nan_to_num(le_wet_closed, nan=0.0), 0.0),
+                                              np.where(np.isfinite(ta), ta, 10.0), interval_seconds),
+                      dtype=float)
+    evap = np.where(np.isfinite(le_wet_closed) & ~snow, evap, np.nan)
+    frac = intercepted_water_fraction(np.asarray(wetting, dtype=bool), np.asarray(refill_mm, dtype=float),
+                                      evap, storage_mm)
+    le_wet = closure * le_wet_closed
+    base_ok = np.isfinite(base_estimate)
+    apply = (wet_gap & ~snow & (frac > 0) & np.isfinite(le_wet) & ((frac >= 1.0) | base_ok))
+    est[apply] = np.where(frac[apply] >= 1.0, le_wet[apply],
+                          frac[apply] * le_wet[apply] + (1.0 - frac[apply]) * np.nan_to_num(base_estimate[apply]))
+    spread = np.asarray(base_sd, dtype=float)
+    fallback = np.nanmedian(spread[np.isfinite(spread)]) if np.isfinite(spread).any() else np.nan
+    sd[apply] = np.where(np.isfinite(spread[apply]), spread[apply], fallback)
+    method[apply] = "penman_monteith_wet_canopy"
+    lower = ga_source != "measured"
+    for name in ("rg", "ta", "vpd"):
+        lower = lower | drivers_filled.get(name, np.zeros(n, bool))
+    quality[apply] = lower_quality(np.full(int(apply.sum()), "fair", dtype=object), lower[apply])
+    info = {"intervals": int(apply.sum()),
+            "wet_gap_intervals": int(wet_gap.sum()),
+            "mean_wet_fraction": float(frac[apply].mean()) if apply.any() else None}
     return est, sd, method, quality, info

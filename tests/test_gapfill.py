@@ -578,3 +578,176 @@ def test_neighbour_with_naive_index_is_a_clear_error():
     nb = pd.DataFrame({"ta": frame["ta"].to_numpy()}, index=frame.index.tz_localize(None))
     with pytest.raises(TowerflowError, match="neighbours.invented-hill"):
         quiet_fill(frame, flags, site, standard_rules(), neighbours={"invented-hill": nb})
+
+
+# ----------------------------------------------------------------------------------------
+# wet canopy: LE rejected in rain (open-path analyser), filled as interception evaporation
+# ----------------------------------------------------------------------------------------
+
+WET_CLOSURE = 0.85  # the invented site's closure ratio (h = 0.85 a − le in simulate)
+
+
+def simulate_rain(days=40, seed=5, open_path=True):
+    """The invented meadow with rain events: 2 h of rain (1 mm per half-hour) at 11:00 every
+    fourth day; QC's ``rain_wetted`` covers the rain and the 2 h after ([wet] dry_after).
+    In the wet intervals the sky is overcast (rg × 0.3), rh 90 %, and LE is the wet-surface
+    evaporation: 0.85 · Penman–Monteith with gs = 1 m s-1 (g_a/g_s ≈ 0, the wet-surface
+    Penman rate, Monteith and Unsworth 2013 ch. 13), H = 0.85 A − LE. At an open-path site
+    LE carries the wet bit (16) while rain_wetted; at a closed-path-like site it stays
+    accepted."""
+    frame, flags, site = simulate(days=days, seed=seed)
+    rng = np.random.default_rng(seed + 100)
+    idx = frame.index
+    n = len(idx)
+    hour = (idx.hour + idx.minute / 60).to_numpy()
+    day = np.arange(n) // 48
+    rain = (day % 4 == 2) & (hour >= 11.0) & (hour < 13.0)
+    wetted = (day % 4 == 2) & (hour >= 11.0) & (hour < 15.0)
+    f = frame.copy()
+    f.loc[wetted, "rg"] = f.loc[wetted, "rg"] * 0.3
+    f.loc[wetted, "rh"] = 90.0
+    f["vpd"] = micromet.vpd_from_rh(f["ta"].to_numpy(), f["rh"].to_numpy())
+    f.loc[wetted, "rn"] = 0.7 * f.loc[wetted, "rg"] - 40 + rng.normal(0, 5, int(wetted.sum()))
+    f["g"] = 0.1 * f["rn"]
+    a = (f["rn"] - f["g"]).to_numpy()
+    ga = micromet.aerodynamic_conductance(f["wind"].to_numpy(), f["ustar"].to_numpy())
+    le_wet = WET_CLOSURE * np.asarray(micromet.penman_monteith(a, f["ta"].to_numpy(), f["vpd"].to_numpy(),
+                                                               f["p_air"].to_numpy(), ga, 1.0))
+    truth = f["le"].to_numpy().copy()
+    truth[wetted] = le_wet[wetted]
+    f.loc[wetted, "le"] = truth[wetted] + rng.normal(0, 8, int(wetted.sum()))
+    f.loc[wetted, "h"] = WET_CLOSURE * a[wetted] - f.loc[wetted, "le"] + rng.normal(0, 10, int(wetted.sum()))
+    f["precip"] = np.where(rain, 1.0, 0.0)
+    f["rain_wetted"] = wetted
+    fl = flags.copy()
+    fl["precip"] = np.zeros(n, np.int32)
+    fl["rain_wetted"] = np.zeros(n, np.int32)
+    # ordinary gaps of LE and H (both kinds of site)
+    fl = reject(fl, ["le", "h"], random_gaps(n, 0.15, rng, 12))
+    if open_path:
+        fl = reject(fl, ["le"], wetted, bit=16)  # pipeline.flags.WET
+    return f, fl, site, wetted, truth
+
+
+def _rules(**gapfill):
+    r = standard_rules()
+    r["gapfill"] = {**r["gapfill"], **gapfill}
+    return r
+
+
+@pytest.fixture(scope="module")
+def wet_open_path():
+    f, fl, site, wetted, truth = simulate_rain(open_path=True)
+    on = quiet_fill(f, fl, site, _rules())
+    off = quiet_fill(f, fl, site, _rules(wet_canopy_fill=False))
+    return f, fl, wetted, truth, on, off
+
+
+def test_wet_canopy_fill_recovers_interception_evaporation(wet_open_path):
+    f, fl, wetted, truth, on, off = wet_open_path
+    m = on.columns["le_fill_method"].to_numpy()
+    assert (m[wetted] == "penman_monteith_wet_canopy").all()
+    assert not (m[~wetted] == "penman_monteith_wet_canopy").any()
+    wet_est = on.columns["le_filled"].to_numpy()[wetted]
+    dry_est = off.columns["le_filled"].to_numpy()[wetted]
+    t = truth[wetted]
+    rmse_wet = np.sqrt(np.mean((wet_est - t) ** 2))
+    rmse_dry = np.sqrt(np.mean((dry_est - t) ** 2))
+    bias_wet = np.mean(wet_est - t)
+    # tolerance (ours): the truth uses gs = 1 m s-1 and the fill gs → ∞ (a few W m-2 apart)
+    # and the fill's closure ratio is estimated from noisy H and LE (±0.02 → ±2 % of LE)
+    assert abs(bias_wet) < 0.05 * np.mean(t) + 3.0
+    assert rmse_wet < 0.1 * np.mean(t) + 5.0
+    assert rmse_wet < 0.5 * rmse_dry  # and clearly beats the dry-canopy fill
+    assert np.mean(dry_est - t) < -10.0  # the dry fill's known low bias (regression)
+    q = on.columns["le_fill_quality"].to_numpy()[wetted]
+    assert set(q) <= {"fair", "poor"}
+    sd = on.columns["le_fill_sd"].to_numpy()[wetted]
+    assert np.isfinite(sd).all() and (sd > 0).all()
+    info = on.summary["fill_choice"]["le"]["wet_canopy"]
+    assert info["intervals"] == int(wetted.sum())
+    assert info["storage_mm"] == pytest.approx(0.7)  # short canopy, [gapfill] default
+
+
+def test_wet_canopy_fill_leaves_dry_gaps_and_keeps_h_residual_consistent(wet_open_path):
+    f, fl, wetted, truth, on, off = wet_open_path
+    for col in ("le_filled", "le_fill_method", "le_fill_quality", "le_fill_sd"):
+        a = on.columns[col].to_numpy()[~wetted]
+        b = off.columns[col].to_numpy()[~wetted]
+        if a.dtype == object:
+            assert (a == b).all(), col
+        else:
+            np.testing.assert_array_equal(a, b, err_msg=col)
+    # H filled as the energy-balance residual uses the new LE: H + LE unchanged
+    hm_on = on.columns["h_fill_method"].to_numpy()
+    hm_off = off.columns["h_fill_method"].to_numpy()
+    res = (hm_on == "energy_balance_residual") & (hm_off == "energy_balance_residual") & wetted
+    if on.summary["fill_choice"]["h"]["chosen"] == "energy_balance_residual":
+        assert res.any()
+    s_on = (on.columns["h_filled"] + on.columns["le_filled"]).to_numpy()[res]
+    s_off = (off.columns["h_filled"] + off.columns["le_filled"]).to_numpy()[res]
+    np.testing.assert_allclose(s_on, s_off, rtol=1e-9, atol=1e-9)
+    np.testing.assert_array_equal(on.columns["h_filled"].to_numpy()[~wetted],
+                                  off.columns["h_filled"].to_numpy()[~wetted])
+
+
+def test_closed_path_le_accepted_in_rain_is_left_alone():
+    """LE measured in rain (closed path): its rain gaps have wet analogues, nothing changes."""
+    f, fl, site, wetted, truth = simulate_rain(open_path=False)
+    assert ((fl["le"].to_numpy() != 0) & wetted).any()  # some rain intervals are gaps
+    on = quiet_fill(f, fl, site, _rules())
+    off = quiet_fill(f, fl, site, _rules(wet_canopy_fill=False))
+    assert not (on.columns["le_fill_method"] == "penman_monteith_wet_canopy").any()
+    np.testing.assert_array_equal(on.columns["le_filled"].to_numpy(), off.columns["le_filled"].to_numpy())
+
+
+def test_wet_gap_needs_missing_wet_analogues():
+    from pipeline.gapfill import wet_gaps
+
+    idx = pd.date_range("2025-06-01", periods=10, freq="30min", tz="Etc/GMT-1")
+    frame = pd.DataFrame({"rain_wetted": [False, True, True, True, False, False, False, False, True, True]},
+                         index=idx)
+    flags = pd.DataFrame({"le": np.array([0, 16, 16, 0, 0, 1, 0, 0, 0, 0], np.int32)}, index=idx)
+    acc = flags["le"].to_numpy() == 0
+    acc[3] = False  # a wetted gap without the wet bit
+    gaps = ~acc
+    # no accepted wetted LE within ±2 intervals of 1-3: all three qualify; 5 is not wet
+    out = wet_gaps(frame, flags, acc, gaps, window_intervals=2, min_analogues=2)
+    assert out.tolist() == [False, True, True, True, False, False, False, False, False, False]
+    # a wider window reaches the accepted wetted 8 and 9: analogues exist
+    out = wet_gaps(frame, flags, acc, gaps, window_intervals=8, min_analogues=2)
+    assert not out[1:4].any()
+
+
+def test_intercepted_water_fraction_hand_worked():
+    from pipeline.gapfill_penman import intercepted_water_fraction, wet_canopy_storage
+
+    wetting = np.array([False, True, False, False, False, True, False, False])
+    refill = np.array([0.0, 0.4, 0.0, 0.0, 0.0, 5.0, 0.0, 0.0])
+    evap = np.array([0.3, 0.1, 0.2, 0.2, 0.3, 0.1, 0.6, 0.6])
+    frac = intercepted_water_fraction(wetting, refill, evap, np.full(8, 1.0))
+    # hand-worked: store 0.4 → 0.3 → 0.1 → 0 (0.1 of 0.2 supplied) → empty; then capped at 1.0
+    # mm → 0.9 → 0.3 → 0 (0.3 of 0.6 supplied); nothing before the first rain
+    np.testing.assert_allclose(frac, [0, 1, 1, 0.5, 0, 1, 1, 0.5])
+    inf_refill = intercepted_water_fraction(np.array([True, False]), np.array([np.inf, 0.0]),
+                                            np.array([0.5, 0.6]), np.array([1.0, 1.0]))
+    np.testing.assert_allclose(inf_refill, [1.0, 5 / 6])  # irrigation fills the store
+    s = wet_canopy_storage([0.3, 18.0, np.nan], short_mm=0.7, tall_mm=1.5, tall_height_m=5.0)
+    np.testing.assert_allclose(s, [0.7, 1.5, 0.7])
+
+
+def test_wet_canopy_store_limits_the_wet_fill():
+    """With a tiny store the canopy dries within the rain's first interval after the rain:
+    the later wet-window intervals keep the dry fill."""
+    f, fl, site, wetted, truth = simulate_rain(days=24, open_path=True)
+    r = _rules(wet_canopy_storage_short_mm=0.05)
+    on = quiet_fill(f, fl, site, r)
+    off = quiet_fill(f, fl, site, _rules(wet_canopy_fill=False))
+    m = on.columns["le_fill_method"].to_numpy()
+    rain = f["precip"].to_numpy() > 0
+    assert (m[rain] == "penman_monteith_wet_canopy").all()  # refilled every rainy interval
+    hour = (f.index.hour + f.index.minute / 60).to_numpy()
+    late = wetted & (hour >= 13.5)  # an hour after the rain: 0.05 mm is long gone
+    assert late.any() and not (m[late] == "penman_monteith_wet_canopy").any()
+    np.testing.assert_array_equal(on.columns["le_filled"].to_numpy()[late],
+                                  off.columns["le_filled"].to_numpy()[late])
