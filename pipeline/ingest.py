@@ -528,10 +528,13 @@ def _dst_warnings(path: Path, stamps: pd.Series, lines: np.ndarray, interval: pd
     """Warn about a missing or repeated local hour on a daylight-saving switch date."""
     if len(stamps) < 2:
         return []
-    step = stamps.diff().iloc[1:]
+    # steps on the int64 nanoseconds (the stamps hold no NaT here): the same tests as on the
+    # Series of differences, without building it
+    t = stamps.to_numpy().astype("datetime64[ns]").view(np.int64)
+    step = np.diff(t)
     hour = pd.Timedelta(hours=1)
-    forward = (step == interval + hour).to_numpy()
-    backward = (step == interval - hour).to_numpy()
+    forward = step == (interval + hour).value
+    backward = step == (interval - hour).value
     if not (forward.any() or backward.any()):
         return []
     switch = dst_switch_dates(sorted(set(stamps.dt.year.dropna().astype(int))))
@@ -554,8 +557,8 @@ def _check_swapped_jumps(path: Path, text: pd.Series, stamps: pd.Series, lines: 
     swapped_fmt = _swap_day_month(fmt)
     if swapped_fmt == fmt or len(stamps) < 2:
         return
-    step = stamps.diff().abs().to_numpy()
-    jumps = np.flatnonzero(step > _SWAP_JUMP)
+    t8 = stamps.to_numpy().astype("datetime64[ns]").view(np.int64)
+    jumps = np.flatnonzero(np.abs(np.diff(t8)) > _SWAP_JUMP.value) + 1  # row i jumped from row i − 1
     if jumps.size == 0:
         return
     rows = np.unique(np.concatenate([jumps, jumps - 1]))
@@ -572,6 +575,27 @@ def _check_swapped_jumps(path: Path, text: pd.Series, stamps: pd.Series, lines: 
                 f"{pd.Timestamp(t[i]):%Y-%m-%d %H:%M}; read with day and month swapped they are continuous: "
                 f"day and month look swapped (a file edited in a spreadsheet?) against timestamp_format {fmt!r}",
                 file=path, row=int(lines[i]))
+
+
+def _snap_to_grid(path, stamps, starts, lines, interval, ts_cols, site, warnings_):
+    """UTC interval starts from local ``starts`` snapped to the ``interval`` grid (stamps off the
+    grid within the tolerance are moved, with a warning appended to ``warnings_``; beyond it:
+    InputError)."""
+    snapped = starts.dt.round(interval)
+    off = (starts - snapped).abs()
+    tolerance = interval * SNAP_TOLERANCE
+    beyond = (off > tolerance).to_numpy()
+    if beyond.any():
+        i = int(np.argmax(beyond))
+        raise InputError(f"stamp {stamps.iloc[i]:%Y-%m-%d %H:%M:%S} is {off.iloc[i]} off the {interval} grid "
+                         f"(more than the {tolerance} tolerance)", file=path, row=int(lines[i]),
+                         column=" ".join(ts_cols))
+    moved = (off > pd.Timedelta(0)).to_numpy()
+    if moved.any():
+        i = int(np.argmax(moved))
+        warnings_.append(f"{path}: {int(moved.sum())} stamps up to {off.max()} off the grid snapped to the "
+                         f"nearest interval (first at row {lines[i]}: {stamps.iloc[i]:%Y-%m-%d %H:%M:%S})")
+    return (snapped - pd.Timedelta(hours=site.utc_offset_hours)).dt.tz_localize("UTC")
 
 
 def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile:
@@ -649,7 +673,18 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             warnings_.append(f"{path}: row {lines[last]}: last line has {scan.last_fields} of "
                              f"{len(header.names)} fields (truncated write): dropped")
         keep[pos:pos + m] = ~blank
-        for j, col in enumerate(numeric_cols):
+        kinds = chunk.dtypes
+        if numeric_cols and all(kinds[c].kind in "fiub" for c in numeric_cols):
+            # every value column parsed as numbers (the usual case): one float block, as
+            # _to_float gives column by column; no text, so no bad cells
+            values = chunk[numeric_cols].to_numpy(dtype=np.float64, na_value=np.nan)
+            if sentinels.size:
+                values[np.isin(values, sentinels)] = np.nan
+            matrix[pos:pos + m] = values
+            numeric_done = True
+        else:
+            numeric_done = False
+        for j, col in enumerate([] if numeric_done else numeric_cols):
             values, bad = _to_float(chunk[col], stream.decimal)
             if bad.any():
                 first = int(np.argmax(bad))
@@ -669,7 +704,8 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             passed[col].append(chunk[col].to_numpy().copy())  # a copy: a view would pin the chunk
 
         stamped = np.flatnonzero(~blank)
-        text = _timestamp_text(chunk.iloc[stamped], stream).reset_index(drop=True)
+        rows_ts = chunk if stamped.size == m else chunk.iloc[stamped]  # no blank line: no take
+        text = _timestamp_text(rows_ts, stream).reset_index(drop=True)
         tlines = lines[stamped]
         no_stamp = text.isna().to_numpy()
         if no_stamp.any():
@@ -733,22 +769,15 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
     warnings_ += _dst_warnings(path, stamps, lines, interval)
 
     # interval starts in local standard time, snapped to the grid
-    starts = stamps - interval if stream.timestamp_marks == "end" else stamps
-    snapped = starts.dt.round(interval)
-    off = (starts - snapped).abs()
-    tolerance = interval * SNAP_TOLERANCE
-    beyond = (off > tolerance).to_numpy()
-    if beyond.any():
-        i = int(np.argmax(beyond))
-        raise InputError(f"stamp {stamps.iloc[i]:%Y-%m-%d %H:%M:%S} is {off.iloc[i]} off the {interval} grid "
-                         f"(more than the {tolerance} tolerance)", file=path, row=int(lines[i]),
-                         column=" ".join(ts_cols))
-    moved = (off > pd.Timedelta(0)).to_numpy()
-    if moved.any():
-        i = int(np.argmax(moved))
-        warnings_.append(f"{path}: {int(moved.sum())} stamps up to {off.max()} off the grid snapped to the "
-                         f"nearest interval (first at row {lines[i]}: {stamps.iloc[i]:%Y-%m-%d %H:%M:%S})")
-    utc = (snapped - pd.Timedelta(hours=site.utc_offset_hours)).dt.tz_localize("UTC")
+    shift = interval.value if stream.timestamp_marks == "end" else 0  # ns: stamps mark the ends
+    starts_ns = stamps.to_numpy().view(np.int64) - shift if stamps.dtype == "datetime64[ns]" else None
+    if starts_ns is not None and interval.value > 0 and not (starts_ns % interval.value).any():
+        # every stamp on the grid (the usual case): rounding changes nothing, nothing is off
+        utc = pd.DatetimeIndex((starts_ns - pd.Timedelta(hours=site.utc_offset_hours).value)
+                               .view("datetime64[ns]")).tz_localize("UTC")
+    else:
+        starts = stamps - interval if stream.timestamp_marks == "end" else stamps
+        utc = _snap_to_grid(path, stamps, starts, lines, interval, ts_cols, site, warnings_)
 
     index = pd.DatetimeIndex(utc, name="timestamp_start")
     raw = pd.DataFrame(matrix, columns=numeric_cols, index=index, copy=False)

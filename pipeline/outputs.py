@@ -193,6 +193,11 @@ def daily_table(parts: list[pd.DataFrame]) -> pd.DataFrame:
 
 def json_ready(obj):
     """A deep copy of ``obj`` that :func:`json.dumps` accepts: numpy scalars → Python, NaN → None."""
+    kind = type(obj)
+    if kind is str or kind is int or obj is None:  # the common leaves first (as below: unchanged)
+        return obj
+    if kind is float:
+        return None if math.isnan(obj) or math.isinf(obj) else obj
     if isinstance(obj, dict):
         return {str(k): json_ready(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):

@@ -263,8 +263,11 @@ def snow_days_by_albedo(times: pd.DatetimeIndex, rg, sw_out, albedo_above: float
     with np.errstate(invalid="ignore"):
         use = np.isfinite(rg) & np.isfinite(sw) & (rg > rg_above)
     day = times.normalize()
+    # grouped by the days' int64 stamps (one per local day, as the Timestamps themselves, but
+    # without boxing every interval's stamp into an object array)
+    keys = np.asarray(day) if day.hasnans else day.asi8
     sums = pd.DataFrame({"rg": np.where(use, rg, 0.0), "sw": np.where(use, sw, 0.0)}).groupby(
-        np.asarray(day)).transform("sum")
+        keys).transform("sum")
     with np.errstate(invalid="ignore", divide="ignore"):
         albedo = sums["sw"].to_numpy() / sums["rg"].to_numpy()
     return np.isfinite(albedo) & (albedo > albedo_above)

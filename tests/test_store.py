@@ -586,3 +586,17 @@ def test_unreadable_lock_file(store):
     os.utime(lock, (old, old))
     with pytest.warns(TowerflowWarning, match="unreadable lock file"):
         store.add(make_file("a.csv", "2025-06-02", 4))
+
+
+def test_positions_match_get_indexer():
+    """The binary-search look-up of stamps gives what DatetimeIndex.get_indexer gives, also
+    for a stamp the index lacks (the general look-up then; regression)."""
+    from towerflow.store import _positions
+
+    index = pd.date_range("2021-01-01", periods=48, freq="30min", tz="UTC")
+    want = index[[0, 5, 47]]
+    assert np.array_equal(_positions(index, want.asi8), index.get_indexer(want))
+    odd = pd.DatetimeIndex([index[3], pd.Timestamp("2021-01-01 00:10", tz="UTC")])
+    assert np.array_equal(_positions(index, odd.asi8), index.get_indexer(odd))
+    later = pd.DatetimeIndex([pd.Timestamp("2022-01-01", tz="UTC")])
+    assert np.array_equal(_positions(index, later.asi8), [-1])

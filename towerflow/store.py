@@ -161,8 +161,30 @@ def _equal(stored: np.ndarray, new: np.ndarray) -> np.ndarray:
         a = stored.astype(np.float64)
         b = new.astype(np.float64)
         with np.errstate(invalid="ignore"):
-            return (a == b) | np.isclose(a, b, rtol=_RTOL, atol=0.0)
+            # numpy.isclose(a, b, rtol=_RTOL, atol=0.0) written out (its own expression,
+            # without its per-call argument checks)
+            return (np.abs(a - b) <= _RTOL * np.abs(b)) & np.isfinite(b) | (a == b)
     return np.array([str(x) == str(y) for x, y in zip(stored, new)], dtype=bool)
+
+
+def _float_block(frame: pd.DataFrame, cols, rows=None) -> np.ndarray:
+    """The float64 columns ``cols`` of ``frame`` (rows ``rows``) as one 2-D array, a new one:
+    the values of ``frame[cols].to_numpy()[rows]``, selected by position (cheaper than by
+    label for a few hundred rows)."""
+    block = frame.iloc[:, frame.columns.get_indexer(cols)].to_numpy()
+    return block if rows is None else block[rows]
+
+
+def _positions(index: pd.DatetimeIndex, stamps_i8: np.ndarray) -> np.ndarray:
+    """Positions in ``index`` of stamps (int64 ns) that it holds: ``index.get_indexer`` by a
+    binary search on the sorted stamps (checked; the general look-up otherwise)."""
+    values = index.asi8
+    pos = np.searchsorted(values, stamps_i8).astype(np.intp)
+    if pos.size and (pos.max() >= values.size or not np.array_equal(values[pos], stamps_i8)
+                     or not index.is_monotonic_increasing):
+        return index.get_indexer(pd.DatetimeIndex(stamps_i8.view("datetime64[ns]")).tz_localize("UTC")
+                                 .tz_convert(index.tz))
+    return pos
 
 
 def _text_or(value, fallback):
@@ -670,10 +692,14 @@ class SiteStore:
         stored_cols = [c for c in stored.columns if c not in _PROV]
         new_cols = [c for c in raw.columns if c not in stored_cols]
         common = [c for c in raw.columns if c in stored_cols]
-        overlap = stored.index.intersection(raw.index)
+        # both indexes are sorted and unique (the store's pieces, a checked file): the overlap
+        # and its positions on the int64 stamps (what intersection and get_indexer give)
+        s_i8, r_i8 = stored.index.asi8, raw.index.asi8
+        r_in = np.isin(r_i8, s_i8)
+        overlap = raw.index[r_in]
         n_ov = len(overlap)
-        s_pos = stored.index.get_indexer(overlap)
-        r_pos = raw.index.get_indexer(overlap)
+        s_pos = np.searchsorted(s_i8, r_i8[r_in]).astype(np.intp)
+        r_pos = np.flatnonzero(r_in).astype(np.intp)
 
         differ = np.zeros((n_ov, len(common)), dtype=bool)
         fill = np.zeros((n_ov, len(common)), dtype=bool)
@@ -682,9 +708,10 @@ class SiteStore:
         # frame look-ups (same elementwise tests)
         s_types, r_types = stored.dtypes, raw.dtypes
         all_float = bool(common) and all(s_types[c] == np.float64 and r_types[c] == np.float64 for c in common)
-        raw_block = raw[common].to_numpy() if all_float else None
+        raw_block = _float_block(raw, common) if all_float else None
+        s_block = _float_block(stored, common) if all_float else None
         if all_float:
-            s_all = stored[common].to_numpy()[s_pos]
+            s_all = s_block[s_pos]
             r_all = raw_block[r_pos]
         for j, col in enumerate(common):
             s = s_all[:, j] if all_float else stored[col].to_numpy()[s_pos]
@@ -730,9 +757,16 @@ class SiteStore:
         columns = {col: out[col] for col in out.columns if not (all_float and col in common)}
         for col in new_cols:
             columns[col] = raw[col].reindex(index)
-        new_only = ~index.isin(stored.index)
-        new_pos = raw.index.get_indexer(index[new_only])
-        out_block = out[common].to_numpy() if all_float else None  # a copy: written below
+        idx_i8, ov_i8 = index.asi8, r_i8[r_in]
+        stored_at = _positions(index, s_i8)  # every stored row is in the union
+        new_only = np.ones(len(index), dtype=bool)
+        new_only[stored_at] = False  # ~index.isin(stored.index)
+        new_pos = _positions(raw.index, idx_i8[new_only])  # the new rows come from the file
+        if all_float:  # out[common].to_numpy(): the stored values on their rows, NaN on the new
+            out_block = np.full((len(index), len(common)), np.nan)
+            out_block[stored_at] = s_block
+        else:
+            out_block = None
         for col_j, col in enumerate(common):
             values = out_block[:, col_j] if all_float else columns[col].to_numpy(copy=True)
             incoming = raw_block[:, col_j] if all_float else raw[col].to_numpy()
@@ -741,7 +775,7 @@ class SiteStore:
             values[new_only] = incoming[new_pos]
             rows = np.flatnonzero(replace[:, col_j])
             if len(rows):
-                values[index.get_indexer(overlap[rows])] = incoming[r_pos[rows]]
+                values[_positions(index, ov_i8[rows])] = incoming[r_pos[rows]]
             columns[col] = values
         pc = PROVENANCE_COLUMNS
         # provenance of the new rows, set on the arrays (text columns already of object type
@@ -764,7 +798,7 @@ class SiteStore:
             out.loc[new_only, pc["source_sha256"]] = sha
             out.loc[new_only, pc["ingested_at"]] = now
         if changed.any():
-            where = index.get_indexer(overlap[changed])
+            where = _positions(index, ov_i8[changed])
             for key, value in (("changed_by_file", name), ("changed_by_sha256", sha)):
                 col = out[pc[key]].to_numpy(dtype=object, copy=True)
                 col[where] = value
