@@ -85,20 +85,23 @@ def stage_qc(state: SiteState) -> SiteState:
     return state
 
 
+def _absorb(state: SiteState, name: str, result) -> SiteState:
+    """Take a stage's :class:`~pipeline.stage.StageResult` into the state under ``name``."""
+    state.columns[name] = result.columns
+    state.summary.update(result.summary)
+    state.warnings.extend(result.warnings)
+    if result.daily is not None:
+        state.daily[name] = result.daily
+    return state
+
+
 def stage_closure(state: SiteState) -> SiteState:
     from .closure import assess_closure
     from .health import assess_health
 
-    closure = assess_closure(state.frame, state.flags, state.site, state.rules)
-    state.columns["closure"] = closure.columns
-    state.summary.update(closure.summary)
-    state.warnings.extend(closure.warnings)
-    if closure.daily is not None:
-        state.daily["closure"] = closure.daily
+    _absorb(state, "closure", assess_closure(state.frame, state.flags, state.site, state.rules))
     health = assess_health(state.frame, state.flags, state.site, state.rules)
-    state.columns["health"] = health.columns
-    state.summary.update(health.summary)
-    state.warnings.extend(health.warnings)
+    _absorb(state, "health", health)
     if "suspect_clock" in health.columns:
         suspect = health.columns["suspect_clock"].to_numpy(dtype=bool)
         flags = state.flags.copy()
@@ -116,12 +119,7 @@ def stage_filling(state: SiteState) -> SiteState:
     if closure is not None and "available_energy" in closure and "available_energy" not in frame:
         frame = frame.assign(available_energy=closure["available_energy"])
     result = fill_gaps(frame, state.flags, state.site, state.rules, neighbours=state.neighbours or None)
-    state.columns["filling"] = result.columns
-    state.summary.update(result.summary)
-    state.warnings.extend(result.warnings)
-    if result.daily is not None:
-        state.daily["filling"] = result.daily
-    return state
+    return _absorb(state, "filling", result)
 
 
 def stage_uncertainty(state: SiteState) -> SiteState:
@@ -131,12 +129,7 @@ def stage_uncertainty(state: SiteState) -> SiteState:
     result = assess_uncertainty(state.frame, state.flags, state.site, state.rules,
                                 filling=state.columns["filling"], fill_summary=state.summary,
                                 closure=state.columns.get("closure"))
-    state.columns["uncertainty"] = result.columns
-    state.summary.update(result.summary)
-    state.warnings.extend(result.warnings)
-    if result.daily is not None:
-        state.daily["uncertainty"] = result.daily
-    return state
+    return _absorb(state, "uncertainty", result)
 
 
 def stage_conductance(state: SiteState) -> SiteState:
@@ -149,12 +142,7 @@ def stage_conductance(state: SiteState) -> SiteState:
         kb_inverse=state.cfg.conductance.get("kb_inverse"),
         le_filled=state.columns["filling"]["le_filled"] if "filling" in state.columns else None,
     )
-    state.columns["conductance"] = result.columns
-    state.summary.update(result.summary)
-    state.warnings.extend(result.warnings)
-    if result.daily is not None:
-        state.daily["conductance"] = result.daily
-    return state
+    return _absorb(state, "conductance", result)
 
 
 def _daily_core(state: SiteState) -> pd.DataFrame:
