@@ -67,34 +67,12 @@ def site_output_dir(out_dir: Path, site_id: str) -> Path:
     return target
 
 
-def _toml_value(value) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, (int, float, np.integer, np.floating)):
-        return repr(float(value)) if isinstance(value, (float, np.floating)) else str(int(value))
-    if isinstance(value, str):
-        return json.dumps(value)
-    if isinstance(value, (list, tuple)):
-        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
-    raise TypeError(f"cannot write {type(value).__name__} to TOML")
-
-
 def rules_to_toml(rules: dict, *, header: str = "") -> str:
-    """A rule set as TOML text that ``load_rules`` reads back to the same dict."""
+    """A rule set as TOML text that ``load_rules`` reads back to the same dict (tomli-w)."""
+    import tomli_w
+
     lines = [f"# {line}" for line in header.splitlines()] if header else []
-
-    def emit(table: dict, prefix: str):
-        scalars = {k: v for k, v in table.items() if not isinstance(v, dict)}
-        tables = {k: v for k, v in table.items() if isinstance(v, dict)}
-        if prefix and (scalars or not tables):
-            lines.append(f"\n[{prefix}]")
-        for key, value in scalars.items():
-            lines.append(f"{key} = {_toml_value(value)}")
-        for key, value in tables.items():
-            emit(value, f"{prefix}.{key}" if prefix else key)
-
-    emit(rules, "")
-    return "\n".join(lines) + "\n"
+    return "\n".join(lines) + ("\n" if lines else "") + tomli_w.dumps(rules)
 
 
 def write_parquet(path: Path, frame: pd.DataFrame, *, file_metadata: dict, extra: dict | None = None) -> None:
