@@ -90,7 +90,7 @@ from . import micromet
 from .closure import available_energy as _closure_available_energy
 from .errors import warn
 from .flags import accepted_values
-from .gapfill_drivers import FILLED_DRIVER_METHODS, fill_met_drivers, run_length, runs
+from .gapfill_drivers import FILLED_DRIVER_METHODS, fill_met_drivers, run_length, runs, value_counts
 from . import flags as flagbits
 from .gapfill_penman import (aerodynamic_conductance_for_filling, closure_ratio,
                              energy_balance_residual_fill, penman_monteith_fill, wet_canopy_fill,
@@ -157,10 +157,10 @@ def _overlay(base, top):
                  for b, t in zip(base, top))
 
 
-def _fill_le(ctx: _Context, strategy: str, le_obs, to_fill):
-    base = _similar(ctx, le_obs, to_fill)
+def _fill_le(ctx: _Context, strategy: str, le_obs, to_fill, base=None):
+    """LE by ``strategy``; ``base`` is the similar-conditions fill of the same gaps if known."""
     if strategy == "similar_conditions":
-        return base, {}
+        return (_similar(ctx, le_obs, to_fill) if base is None else base), {}
     g = ctx.rules
     est, sd, method, quality, info = penman_monteith_fill(
         le_obs, to_fill, index=ctx.index, rg=ctx.drivers["rg"], ta=ctx.drivers["ta"],
@@ -168,19 +168,25 @@ def _fill_le(ctx: _Context, strategy: str, le_obs, to_fill):
         ga=ctx.ga, ga_source=ctx.ga_source, is_day=ctx.is_day, snow=ctx.snow, swc=ctx.swc,
         drivers_filled=ctx.drivers_filled, window=duration(g["conductance_window"]),
         step=duration(g["conductance_step"]), min_samples=int(g["conductance_min_samples"]))
+    if base is None:  # similar conditions where the first method gave no estimate (a gap's
+        # similar-conditions fill does not depend on which other gaps are filled)
+        base = _similar(ctx, le_obs, to_fill & ~np.isfinite(est))
     return _overlay(base, (est, sd, method, quality)), info
 
 
-def _fill_h(ctx: _Context, strategy: str, h_obs, to_fill, le_obs, le_filled, le_quality):
-    base = _similar(ctx, h_obs, to_fill)
+def _fill_h(ctx: _Context, strategy: str, h_obs, to_fill, le_obs, le_filled, le_quality, base=None):
+    """H by ``strategy``; ``base`` is the similar-conditions fill of the same gaps if known."""
     if strategy == "similar_conditions":
-        return base, {}
+        return (_similar(ctx, h_obs, to_fill) if base is None else base), {}
     g = ctx.rules
     est, sd, method, quality, info = energy_balance_residual_fill(
         h_obs, le_obs, le_filled, le_quality, to_fill, index=ctx.index,
         available_energy=ctx.available_energy, is_day=ctx.is_day,
         window=duration(g["conductance_window"]), step=duration(g["conductance_step"]),
         min_samples=int(g["conductance_min_samples"]))
+    if base is None:  # similar conditions where the first method gave no estimate (a gap's
+        # similar-conditions fill does not depend on which other gaps are filled)
+        base = _similar(ctx, h_obs, to_fill & ~np.isfinite(est))
     return _overlay(base, (est, sd, method, quality)), info
 
 
@@ -373,16 +379,19 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
     cv_results = {}
     min_cv = 10  # common practice: fewer hidden values do not rank methods
     if hidden.sum() >= min_cv:
+        # both strategies share the similar-conditions fill (the second fills by day only)
+        le_base = _similar(ctx, le_cv, hidden)
         for strat in LE_STRATEGIES:
-            res, _ = _fill_le(ctx, strat, le_cv, hidden)
+            res, _ = _fill_le(ctx, strat, le_cv, hidden, base=le_base)
             cv_results[("le", strat)] = res
             choice["le"]["candidates"][strat] = skill(np.where(hidden, res[0], np.nan), obs["le"])
         choice["le"]["chosen"] = _best(choice["le"]["candidates"])
         le_cv_res = cv_results[("le", choice["le"]["chosen"])]
         le_cv_filled = np.where(hidden, le_cv_res[0], le_cv)
         le_cv_quality = np.where(hidden, le_cv_res[3], "measured").astype(object)
+        h_base = _similar(ctx, h_cv, hidden)
         for strat in H_STRATEGIES:
-            res, _ = _fill_h(ctx, strat, h_cv, hidden, le_cv, le_cv_filled, le_cv_quality)
+            res, _ = _fill_h(ctx, strat, h_cv, hidden, le_cv, le_cv_filled, le_cv_quality, base=h_base)
             cv_results[("h", strat)] = res
             choice["h"]["candidates"][strat] = skill(np.where(hidden, res[0], np.nan), obs["h"])
         choice["h"]["chosen"] = _best(choice["h"]["candidates"])
@@ -461,10 +470,10 @@ def fill_gaps(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *,
         "fill_choice": choice,
         "long_gaps": long_summary,
         "driver_fill": {**drv_summary, "ga_wind_relation": ga_relation,
-                        "ga_source": _counts(ga_source)},
+                        "ga_source": value_counts(ga_source)},
     }
     for flux in ("le", "h"):
-        choice[flux]["method_counts"] = _counts(cols[f"{flux}_fill_method"])
+        choice[flux]["method_counts"] = value_counts(cols[f"{flux}_fill_method"])
     if le_info:
         choice["le"]["penman_monteith_fit"] = le_info
     if wet_info:
@@ -573,11 +582,6 @@ def _assemble(flux, obs, acc, est, sd, method, quality):
     q[none] = None  # CONTRACT: quality is measured / good / fair / poor; an unfilled value has none
     sd_out[none] = np.nan
     return val, sd_out, m, q
-
-
-def _counts(values) -> dict:
-    names, counts = np.unique(np.asarray(values, dtype=str), return_counts=True)
-    return {str(a): int(b) for a, b in zip(names, counts)}
 
 
 def _daily(index, long_gap):

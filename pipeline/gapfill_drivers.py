@@ -276,7 +276,7 @@ def fill_met_drivers(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict
             method[take] = k_method[take]
         method[~np.isfinite(out)] = "unavailable"
         cols["rg_filled"], cols["rg_fill_method"], cols["rg_fill_source"] = out, method, source
-        summary["rg"] = _count(method)
+        summary["rg"] = value_counts(method)
         if rep:
             summary["rg"]["neighbours"] = rep
 
@@ -299,7 +299,7 @@ def fill_met_drivers(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict
     ta_f, ta_m, ta_s, ta_rep = _fill_series(ta, index=index, interval=interval, max_interp_steps=max_steps,
                                             widest=widest, nb_arrays=nb_ta, nb_rules=nb_rules)
     cols["ta_filled"], cols["ta_fill_method"], cols["ta_fill_source"] = ta_f, ta_m, ta_s
-    summary["ta"] = _count(ta_m)
+    summary["ta"] = value_counts(ta_m)
     if ta_rep:
         summary["ta"]["neighbours"] = ta_rep
 
@@ -346,12 +346,16 @@ def fill_met_drivers(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict
         rh_f = np.where(keep, np.clip(rh, 0.0, 100.0), rh_f)
         rh_m[keep] = "measured"
     cols["rh_filled"], cols["rh_fill_method"] = rh_f, rh_m
-    summary["vpd"] = _count(vpd_m)
+    summary["vpd"] = value_counts(vpd_m)
     if ea_rep:
         summary["vpd"]["neighbours"] = ea_rep
     return pd.DataFrame(cols, index=index), summary, warnings_out
 
 
-def _count(method) -> dict:
-    names, counts = np.unique(np.asarray(method, dtype=str), return_counts=True)
-    return {str(a): int(b) for a, b in zip(names, counts)}
+def value_counts(values) -> dict:
+    """{value: count} of a label array, keys as text in sorted order (for the summaries)."""
+    counts = pd.Series(np.asarray(values, dtype=object)).value_counts(sort=False, dropna=False)
+    out = {}
+    for key, count in counts.items():
+        out[str(key)] = out.get(str(key), 0) + int(count)
+    return dict(sorted(out.items()))

@@ -8,7 +8,8 @@ response
 
 (hyperbolic light response after Jarvis 1976; exponential decline with VPD, a common
 Jarvis-type form; log-linear soil-water term, ours, used only where swc exists) is fitted
-by robust least squares on ln gs (:func:`scipy.optimize.least_squares`, soft-L1 loss) in
+by robust least squares on ln gs (soft-L1 loss, all windows solved together by
+:func:`pipeline.batched_fit.solve_soft_l1`) in
 moving windows (``[gapfill] conductance_window`` centred on blocks of
 ``conductance_step``). In a gap gs is predicted from the gap's own rg, vpd (and swc), and
 LE is computed forward with :func:`pipeline.micromet.penman_monteith` from the gap's
@@ -50,15 +51,15 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy import optimize
 
-from . import micromet
+from . import batched_fit, micromet
 from .gapfill_similar import lower_quality
 
 __all__ = [
     "aerodynamic_conductance_for_filling",
     "conductance_blocks",
     "fit_conductance_response",
+    "fit_conductance_responses",
     "penman_monteith_fill",
     "energy_balance_residual_fill",
     "closure_ratio",
@@ -126,13 +127,92 @@ def conductance_blocks(index: pd.DatetimeIndex, step: pd.Timedelta, window: pd.T
     return labels, lo, hi
 
 
+_FIT_LOWER = np.array([-20.0, np.log(1.0), 0.0, -200.0])  # a, ln k, b, c
+_FIT_UPPER = np.array([5.0, np.log(5000.0), 5.0, 200.0])
+_FIT_LOSS_SCALE = 0.5  # soft-L1 scale on ln gs: residuals beyond a factor ~1.6 count less (common practice)
+
+
 def _log_model(theta, rg, vpd, dswc):
     a, lnk, b, c = theta
     return a + np.log(rg / (rg + np.exp(lnk))) - b * vpd + c * dswc
 
 
+def fit_conductance_responses(gs, rg, vpd, dswc, valid, *, x0_guess=None, use_swc=None):
+    """Fit the Jarvis-type response to many windows at once (robust least squares on ln gs).
+
+    Parameters
+    ----------
+    gs, rg, vpd, dswc : numpy.ndarray
+        Windows × m: observed surface conductance [m s-1], global radiation [W m-2], vapour
+        pressure deficit [kPa], soil water content minus its window mean [m3 m-3]; rows
+        padded where ``valid`` is false.
+    valid : numpy.ndarray of bool
+        Windows × m.
+    x0_guess : array_like, optional
+        Starting parameters (a, ln k, b, c) for every window (e.g. the site-wide fit);
+        default: a from the window's median ln gs, k = 200 W m-2, b = 0.3 kPa-1, c = 0.
+    use_swc : numpy.ndarray of bool, optional
+        Per window: fit the soil-water term c (default: no window does; c stays 0).
+
+    Returns
+    -------
+    theta : numpy.ndarray
+        Windows × 4 parameters (a, ln k, b, c).
+    ok : numpy.ndarray of bool
+        Per window: the fit converged.
+
+    Notes
+    -----
+    Minimises ½ Σ f² ρ(r²/f²), ρ(z) = 2(√(1 + z) − 1) (soft L1, f = 0.5) of the ln gs
+    residuals r within the bounds a ∈ [−20, 5], k ∈ [1, 5000] W m-2, b ∈ [0, 5] kPa-1,
+    c ∈ [−200, 200] (m3 m-3)-1, all windows together (:func:`pipeline.batched_fit.solve_soft_l1`;
+    the tests check it against :func:`scipy.optimize.least_squares`).
+    """
+    valid = np.asarray(valid, dtype=bool)
+    nw = valid.shape[0]
+    y = np.where(valid, np.log(np.where(valid, gs, 1.0)), 0.0)
+    rg = np.where(valid, rg, 1.0)
+    vpd = np.where(valid, vpd, 0.0)
+    d = np.where(valid, dswc, 0.0) if dswc is not None else np.zeros_like(y)
+    use_swc = np.zeros(nw, dtype=bool) if use_swc is None else np.asarray(use_swc, dtype=bool)
+    if x0_guess is None:
+        med = _row_medians(y, valid)
+        x0 = np.column_stack([med + 0.3, np.full(nw, np.log(200.0)), np.full(nw, 0.3), np.zeros(nw)])
+    else:
+        x0 = np.broadcast_to(np.asarray(x0_guess, dtype=float), (nw, 4)).copy()
+    x0[~use_swc, 3] = 0.0
+    free = np.ones((nw, 4), dtype=bool)
+    free[:, 3] = use_swc
+
+    def residual_and_jacobian(theta, rows, with_jacobian):
+        k = np.exp(theta[:, 1])[:, None]
+        g, v, s = rg[rows], vpd[rows], d[rows]
+        rk = g + k
+        r = theta[:, :1] + np.log(g / rk) - theta[:, 2:3] * v + theta[:, 3:4] * s - y[rows]
+        if not with_jacobian:
+            return r, None
+        jac = np.stack([np.ones_like(g), -k / rk, -v, s], axis=-1)
+        return r, jac
+
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        return batched_fit.solve_soft_l1(residual_and_jacobian, x0, valid, lower=_FIT_LOWER,
+                                         upper=_FIT_UPPER, f_scale=_FIT_LOSS_SCALE, free=free)
+
+
+def _row_medians(y, valid):
+    """Median of the valid entries of every row (0 for a row without any)."""
+    counts = np.maximum(valid.sum(axis=1), 1)
+    s = np.sort(np.where(valid, y, np.inf), axis=1)
+    lo = (counts - 1) // 2
+    hi = counts // 2
+    rows = np.arange(y.shape[0])
+    return np.where(valid.any(axis=1), 0.5 * (s[rows, lo] + s[rows, hi]), 0.0)
+
+
 def fit_conductance_response(gs, rg, vpd, dswc=None, *, x0_guess=None):
     """Fit the Jarvis-type response to observed gs by robust least squares on ln gs.
+
+    One window of :func:`fit_conductance_responses`.
 
     Parameters
     ----------
@@ -152,35 +232,37 @@ def fit_conductance_response(gs, rg, vpd, dswc=None, *, x0_guess=None):
     numpy.ndarray or None
         (a, ln k, b, c), or None if the fit fails.
     """
-    y = np.log(gs)
-    use_swc = dswc is not None
-    d = dswc if use_swc else np.zeros_like(y)
-    x0 = np.array([float(np.median(y)) + 0.3, np.log(200.0), 0.3, 0.0])
-    lower = np.array([-20.0, np.log(1.0), 0.0, -200.0])
-    upper = np.array([5.0, np.log(5000.0), 5.0, 200.0])
-    if x0_guess is not None:
-        x0 = np.clip(np.asarray(x0_guess, dtype=float), lower + 1e-6, upper - 1e-6)
-    npar = 4 if use_swc else 3  # without swc the soil-water term is left out, c = 0
+    gs = np.asarray(gs, dtype=float)[None, :]
+    theta, ok = fit_conductance_responses(
+        gs, np.asarray(rg, dtype=float)[None, :], np.asarray(vpd, dtype=float)[None, :],
+        None if dswc is None else np.asarray(dswc, dtype=float)[None, :],
+        np.ones(gs.shape, dtype=bool), x0_guess=x0_guess, use_swc=np.array([dswc is not None]))
+    return theta[0] if ok[0] else None
 
-    def full(p):
-        return np.concatenate([p, np.zeros(4 - npar)])
 
-    def resid(p):
-        return _log_model(full(p), rg, vpd, d) - y
+def _window_fits(first, last, ok_pos, min_samples, *, gs_obs, rg, vpd, swc, guess):
+    """The response fitted in every window with at least ``min_samples`` observed gs.
 
-    def jac(p):
-        k = np.exp(p[1])
-        cols = [np.ones_like(rg), -k / (rg + k), -vpd, d][:npar]
-        return np.column_stack(cols)
-
-    try:
-        res = optimize.least_squares(resid, x0[:npar], jac=jac, bounds=(lower[:npar], upper[:npar]),
-                                     loss="soft_l1", f_scale=0.5)
-    except (ValueError, np.linalg.LinAlgError):
-        return None
-    if not res.success or not np.all(np.isfinite(res.x)):
-        return None
-    return full(res.x)
+    Window b holds the intervals ``ok_pos[first[b]:last[b]]``; the fits start from
+    ``guess`` (the site-wide fit) and are solved together. Returns {window: parameters} for
+    the windows whose fit converged.
+    """
+    count = last - first
+    rows = np.flatnonzero(count >= max(min_samples, 1))
+    if rows.size == 0:
+        return {}
+    width = int(count[rows].max())
+    col = np.arange(width)
+    valid = col[None, :] < count[rows, None]
+    idx = ok_pos[np.minimum(first[rows, None] + col[None, :], ok_pos.size - 1)]
+    d = None
+    if swc is not None:
+        sw = np.where(valid, swc[idx], 0.0)
+        d = sw - (sw.sum(axis=1) / count[rows])[:, None]
+    theta, converged = fit_conductance_responses(
+        gs_obs[idx], rg[idx], vpd[idx], d, valid, x0_guess=guess,
+        use_swc=np.full(rows.size, swc is not None))
+    return {int(b): theta[i] for i, b in enumerate(rows) if converged[i]}
 
 
 def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, available_energy, ga,
@@ -232,13 +314,8 @@ def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, availabl
         info["reason"] = f"fewer than {min_samples} intervals with an observed surface conductance"
         return est, sd, method, quality, info
 
-    def fit(sel, guess=None):
-        d = None
-        if swc_f is not None:
-            d = swc_f[sel] - swc_f[sel].mean()
-        return fit_conductance_response(gs_obs[sel], rg[sel], vpd[sel], d, x0_guess=guess)
-
-    site_theta = fit(ok)
+    d_site = (swc_f[ok] - swc_f[ok].mean()) if swc_f is not None else None
+    site_theta = fit_conductance_response(gs_obs[ok], rg[ok], vpd[ok], d_site)
     labels, lo, hi = conductance_blocks(index, step, window)
     apply = to_fill & is_day & ~snow & np.isfinite(available_energy) & np.isfinite(ga) \
         & np.isfinite(ta) & np.isfinite(vpd) & np.isfinite(rg) & np.isfinite(p_air)
@@ -250,14 +327,20 @@ def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, availabl
     # O(n × windows); the same elements in the same order give the same fits
     b_lo = np.searchsorted(labels, np.arange(lo.size), side="left")
     b_hi = np.searchsorted(labels, np.arange(lo.size), side="right")
+    # the window fits, all at once: window b holds the intervals ok_pos[first[b]:last[b]]
+    ok_pos = np.flatnonzero(ok)
+    first = np.searchsorted(ok_pos, lo)
+    last = np.searchsorted(ok_pos, hi)
+    window_theta = _window_fits(first, last, ok_pos, min_samples, gs_obs=gs_obs, rg=rg, vpd=vpd,
+                                swc=swc_f, guess=site_theta)
     for b in range(lo.size):  # loop over moving windows (tens per year), not over gaps
         u0, u1 = min(lo[b], b_lo[b]), max(hi[b], b_hi[b])
         seg = slice(u0, u1)
         in_block = np.zeros(u1 - u0, dtype=bool)
         in_block[b_lo[b] - u0:b_hi[b] - u0] = True
         targets = apply[seg] & in_block
-        sel = lo[b] + np.flatnonzero(ok[lo[b]:hi[b]])  # window intervals with an observed gs
-        theta = fit(sel, site_theta) if sel.size >= min_samples else None
+        sel = ok_pos[first[b]:last[b]]  # window intervals with an observed gs
+        theta = window_theta.get(b)
         if theta is None:
             theta = site_theta
             site_wide[b_lo[b]:b_hi[b]] = True

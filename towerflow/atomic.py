@@ -117,7 +117,9 @@ def parquet_bytes(table_or_frame, **write_options) -> bytes:
 
     table = table_or_frame
     if not isinstance(table, pa.Table):
-        table = pa.Table.from_pandas(table_or_frame, preserve_index=True)
+        # one thread: on small frames the conversion pool costs more than it saves (measured:
+        # 93 columns × 17 520 rows, 0.06 s with the pool, 0.02 s without)
+        table = pa.Table.from_pandas(table_or_frame, preserve_index=True, nthreads=1)
     sink = io.BytesIO()
     pq.write_table(table, sink, **write_options)
     return sink.getvalue()

@@ -77,7 +77,7 @@ def rules_to_toml(rules: dict, *, header: str = "") -> str:
 
 def write_parquet(path: Path, frame: pd.DataFrame, *, file_metadata: dict, extra: dict | None = None) -> None:
     """Write ``frame`` atomically with per-column metadata (unit, long_name, standard_name, flags)."""
-    table = pa.Table.from_pandas(frame, preserve_index=False)
+    table = pa.Table.from_pandas(frame, preserve_index=False, nthreads=1)  # see atomic.parquet_bytes
     fields = []
     for f in table.schema:
         meta = column_metadata(f.name, extra)
