@@ -17,14 +17,16 @@ Problem solved, for every window w independently::
 with the soft-L1 loss ρ(z) = 2(√(1 + z) − 1) (the loss ``"soft_l1"`` of
 :func:`scipy.optimize.least_squares`, which is the oracle of the tests) and scale f.
 
-Method: Levenberg–Marquardt on iteratively reweighted normal equations. The gradient of the
-robust cost is Σ ρ'(z_i) r_i ∇r_i, so a fixed point of the weighted Gauss–Newton step with
-weights ρ'(z_i) = 1/√(1 + z_i) is a stationary point of the robust cost (iteratively
-reweighted least squares; Holland and Welsch 1977). Marquardt's damping of the diagonal
-(Marquardt 1963) is raised when a step does not lower the cost and lowered when it does,
-per window. Bounds are kept by projection: a parameter on a bound whose gradient points
-out of the box is held there for the step (an active set), and every trial point is
-clipped into the box.
+Method: Levenberg–Marquardt on reweighted normal equations. With φ(r) = ½ f² ρ(r²/f²) the
+loss of one residual, the gradient of the cost is Σ φ'(r_i) ∇r_i with φ'(r) = r/√(1 + z),
+z = r²/f², and the loss's own curvature is φ''(r) = (1 + z)^(−3/2) > 0; the step solves
+(Σ φ''(r_i) ∇r_i ∇r_iᵀ + λ D) δ = −Σ φ'(r_i) ∇r_i, Gauss–Newton in the model and exact in
+the loss (weights 1/√(1 + z) in both places would be iteratively reweighted least squares,
+Holland and Welsch 1977, with the same fixed point but slower convergence). Marquardt's
+damping λ of the diagonal D (Marquardt 1963) is raised when a step does not lower the cost
+and lowered when it does, per window. Bounds are kept by projection: a parameter on a bound
+whose gradient points out of the box is held there for the step (an active set), and every
+trial point is clipped into the box.
 
 References
 ----------
@@ -107,7 +109,7 @@ def solve_soft_l1(residual_and_jacobian: Callable, x0, valid, *, lower, upper, f
         wr = weight * np.where(ok, r, 0.0)
         jac_t = jac.transpose(0, 2, 1)
         grad = (jac_t @ wr[:, :, None])[:, :, 0]
-        normal = (jac_t * weight[:, None, :]) @ jac
+        normal = (jac_t * (weight ** 3)[:, None, :]) @ jac  # curvature of the loss: (1 + z)^(-3/2)
         # active set: a parameter on a bound whose descent direction leaves the box stays
         hold = ~free[rows] | ((th <= lower) & (grad > 0)) | ((th >= upper) & (grad < 0))
         grad = np.where(hold, 0.0, grad)

@@ -22,6 +22,7 @@ Durations are written as strings that :class:`pandas.Timedelta` parses (``"30 da
 from __future__ import annotations
 
 import copy
+import functools
 import importlib.resources
 import tomllib
 from pathlib import Path
@@ -75,10 +76,16 @@ def _read_toml(path: Path) -> dict:
 
 
 def standard_rules() -> dict:
-    """The network standard rule set, parsed."""
+    """The network standard rule set, parsed (a fresh copy the caller may change)."""
     path = rule_set_path(_STANDARD)
     if path is None:  # pragma: no cover - packaging error
         raise RuleError("the standard rule set is missing from the installation", file="qc_rules/standard.toml")
+    return copy.deepcopy(_parsed_toml(path, path.stat().st_mtime_ns))
+
+
+@functools.lru_cache(maxsize=4)
+def _parsed_toml(path: Path, mtime_ns: int) -> dict:
+    """The file parsed once per version (a stage asks for the standard several times a run)."""
     return _read_toml(path)
 
 
