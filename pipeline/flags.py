@@ -48,6 +48,8 @@ def describe(bits: int) -> list[str]:
 def set_bit(flags: pd.DataFrame, variable: str, mask, bit: int) -> None:
     """OR ``bit`` into ``flags[variable]`` where ``mask`` is true (in place on ``flags``)."""
     mask = np.asarray(mask, dtype=bool)
+    if not mask.any() and flags[variable].dtype == FLAG_DTYPE:
+        return  # nothing to set: the column stays as it is (no frame write)
     col = flags[variable].to_numpy(copy=True)
     col[mask] |= bit
     flags[variable] = col.astype(FLAG_DTYPE)
