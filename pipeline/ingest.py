@@ -25,12 +25,13 @@ Reading conventions (documented choices)
 * Duplicate stamps with identical values merge (warning); conflicting values are an error.
 * Refused as declared wrongly rather than guessed: a decimal comma without
   ``input.decimal = ","``; a file whose stamps are all further apart than the stream's
-  interval (a 60-min export in a 30-min stream); day and month swapped (rows that parse
+  interval plus twice the snap tolerance (a 60-min export in a 30-min stream); day and month swapped (rows that parse
   only swapped, or file-order jumps of days that vanish when read swapped).
 * Memory: the bytes are scanned once in blocks (sha256, fields per line: a row with more
   fields than the header is an error); pandas' C parser then reads only the stream's
-  columns in chunks of :data:`CHUNK_ROWS` rows into preallocated arrays, so a file of
-  hundreds of MB needs little more than its parsed values.
+  columns into preallocated arrays: in one call for a file of up to :data:`CHUNK_ROWS`
+  rows, in chunks of :data:`CHUNK_ROWS` rows beyond, so a file of hundreds of MB needs
+  little more than its parsed values.
 
 Aggregation to the site interval (documented choices)
 -----------------------------------------------------
@@ -295,20 +296,32 @@ def assign_stream(path, cfg: SiteConfig) -> StreamConfig:
 # =======================================================================================
 # read_logger_file
 # =======================================================================================
-def _csv_chunks(path: Path, header: _Header, stream: StreamConfig):
-    """The used columns as read by pandas' C parser (strings for timestamps), in chunks."""
+def _csv_chunks(path: Path, header: _Header, stream: StreamConfig, n_rows: int):
+    """The used columns as read by pandas' C parser (strings for timestamps): in one piece for a
+    file of up to :data:`CHUNK_ROWS` data lines, else in chunks of :data:`CHUNK_ROWS` rows.
+
+    In one piece the timestamp columns are read with the types the parser infers (no
+    per-column conversion): as text when they hold text, the usual case; a file whose stamps
+    read otherwise (numbers such as ``202506011230``) is read again with them as text.
+    """
     needed = _stream_needs(stream)
-    ts = set(_ts_columns(stream))
+    ts = _ts_columns(stream)
     str_missing = [str(m) for m in stream.missing]
     skip = sorted({int(r) + 1 for r in stream.skip_rows})  # file lines, header = 0
+    options = dict(sep=header.delimiter, decimal=stream.decimal, header=0, usecols=needed,
+                   na_values=str_missing, keep_default_na=True, skiprows=skip or None,
+                   skip_blank_lines=False, encoding=header.encoding, engine="c", skipinitialspace=True)
+    as_text = {c: str for c in ts}
     try:
-        reader = pd.read_csv(
-            path, sep=header.delimiter, decimal=stream.decimal, header=0, usecols=needed,
-            dtype={c: str for c in ts}, na_values=str_missing, keep_default_na=True,
-            skiprows=skip or None, skip_blank_lines=False, encoding=header.encoding,
-            engine="c", skipinitialspace=True, chunksize=CHUNK_ROWS,
-        )
-        for chunk in reader:
+        if n_rows <= CHUNK_ROWS:
+            frame = pd.read_csv(path, **options)
+            stamps = [frame[c].to_numpy() for c in ts]
+            if not all(a.dtype == object and pd.api.types.infer_dtype(a, skipna=True) in ("string", "empty")
+                       for a in stamps):
+                frame = pd.read_csv(path, dtype=as_text, **options)
+            yield frame
+            return
+        for chunk in pd.read_csv(path, dtype=as_text, chunksize=CHUNK_ROWS, **options):
             yield chunk.reset_index(drop=True)
     except UnicodeDecodeError:
         raise _decode_error(path, header.encoding) from None
@@ -467,7 +480,11 @@ def _timestamp_text(df: pd.DataFrame, stream: StreamConfig) -> pd.Series:
 def _parse_stamps(text: pd.Series, fmt: str) -> tuple[pd.Series, np.ndarray]:
     """Parse with the declared format, its seconds variants and ``24:00``; (stamps, failed)."""
     stamps = pd.to_datetime(text, format=fmt, errors="coerce")
-    failed = (stamps.isna() & text.notna()).to_numpy()
+    parsed = stamps.to_numpy()
+    if parsed.dtype.kind == "M":  # naive stamps (the usual case): the same test on the arrays
+        failed = np.isnat(parsed) & ~pd.isna(text.to_numpy())
+    else:
+        failed = (stamps.isna() & text.notna()).to_numpy()
     if not failed.any():
         return stamps, failed
     stamps = stamps.copy()
@@ -652,7 +669,7 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
     previous = None  # (text, stamp, line) of the last stamped row of the previous chunk
     pos = 0
     truncated = scan.last_fields is not None and scan.last_fields < len(header.names)
-    for chunk, is_last in _with_last(_csv_chunks(path, header, stream)):
+    for chunk, is_last in _with_last(_csv_chunks(path, header, stream, scan.n_lines - 1)):
         m = len(chunk)
         if pos + m > cap:  # more rows than lines counted (quoted line breaks): grow
             grow = pos + m - cap
@@ -663,7 +680,7 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             cap = pos + m
         lines = all_lines[pos:pos + m]
         # blank lines (kept so that line numbers stay exact): no timestamp and no value
-        blank = chunk[ts_cols[0]].isna().to_numpy()
+        blank = pd.isna(chunk[ts_cols[0]].to_numpy())
         if blank.any():
             blank[blank] = chunk.loc[blank].isna().all(axis=1).to_numpy()
         if is_last and truncated and not blank.all():
@@ -673,11 +690,14 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             warnings_.append(f"{path}: row {lines[last]}: last line has {scan.last_fields} of "
                              f"{len(header.names)} fields (truncated write): dropped")
         keep[pos:pos + m] = ~blank
-        kinds = chunk.dtypes
-        if numeric_cols and all(kinds[c].kind in "fiub" for c in numeric_cols):
+        at = {name: k for k, name in enumerate(chunk.columns)}
+        numeric_at = [at[c] for c in numeric_cols]
+        kinds = chunk.dtypes.to_numpy()
+        if numeric_cols and all(kinds[k].kind in "fiub" for k in numeric_at):
             # every value column parsed as numbers (the usual case): one float block, as
-            # _to_float gives column by column; no text, so no bad cells
-            values = chunk[numeric_cols].to_numpy(dtype=np.float64, na_value=np.nan)
+            # _to_float gives column by column; no text, so no bad cells (columns taken by
+            # position: cheaper than by name for a few hundred rows)
+            values = chunk.iloc[:, numeric_at].to_numpy(dtype=np.float64, na_value=np.nan)
             if sentinels.size:
                 values[np.isin(values, sentinels)] = np.nan
             matrix[pos:pos + m] = values
@@ -704,10 +724,12 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             passed[col].append(chunk[col].to_numpy().copy())  # a copy: a view would pin the chunk
 
         stamped = np.flatnonzero(~blank)
-        rows_ts = chunk if stamped.size == m else chunk.iloc[stamped]  # no blank line: no take
-        text = _timestamp_text(rows_ts, stream).reset_index(drop=True)
+        if stamped.size == m:  # no blank line (the usual case): the chunk's rows, index 0 … m − 1
+            text = _timestamp_text(chunk, stream)
+        else:
+            text = _timestamp_text(chunk.iloc[stamped], stream).reset_index(drop=True)
         tlines = lines[stamped]
-        no_stamp = text.isna().to_numpy()
+        no_stamp = pd.isna(text.to_numpy())
         if no_stamp.any():
             i = int(np.argmax(no_stamp))
             raise InputError("empty timestamp", file=path, row=int(tlines[i]), column=ts_cols[0])
@@ -759,10 +781,13 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
             raise InputError("cannot infer the averaging interval from a single stamp: set input.interval_minutes",
                              file=path)
         interval = pd.Timedelta(np.median(steps)).round("1min")
-    unique = np.unique(stamps.to_numpy())
+    unique = stamps.to_numpy()
+    if not (unique[1:] > unique[:-1]).all():  # sorted and unique already: the usual case
+        unique = np.unique(unique)
     if unique.size >= 4:
         smallest = pd.Timedelta(np.diff(unique).min())
-        if smallest > interval:
+        # two neighbours may each lie up to the snap tolerance off the grid (logger jitter)
+        if smallest > interval * (1 + 2 * SNAP_TOLERANCE):
             raise InputError(f"consecutive stamps are at least {smallest} apart, but the stream's interval is "
                              f"{interval}: a file of another averaging interval (check input.interval_minutes)",
                              file=path)
@@ -774,18 +799,25 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
     if starts_ns is not None and interval.value > 0 and not (starts_ns % interval.value).any():
         # every stamp on the grid (the usual case): rounding changes nothing, nothing is off
         utc = pd.DatetimeIndex((starts_ns - pd.Timedelta(hours=site.utc_offset_hours).value)
-                               .view("datetime64[ns]")).tz_localize("UTC")
+                               .view("datetime64[ns]"), name="timestamp_start").tz_localize("UTC")
     else:
         starts = stamps - interval if stream.timestamp_marks == "end" else stamps
         utc = _snap_to_grid(path, stamps, starts, lines, interval, ts_cols, site, warnings_)
 
-    index = pd.DatetimeIndex(utc, name="timestamp_start")
-    raw = pd.DataFrame(matrix, columns=numeric_cols, index=index, copy=False)
-    for col, values in passthrough.items():
-        raw[col] = values  # as read
+    index = utc if isinstance(utc, pd.DatetimeIndex) else pd.DatetimeIndex(utc, name="timestamp_start")
+    if all(values.dtype == np.float64 for values in passthrough.values()):
+        # passthrough columns read as numbers (float64 as read): one float block
+        block = np.column_stack([matrix, *passthrough.values()]) if passthrough else matrix
+        raw = pd.DataFrame(block, columns=numeric_cols + pass_cols, index=index, copy=False)
+    else:
+        raw = pd.DataFrame(matrix, columns=numeric_cols, index=index, copy=False)
+        for col, values in passthrough.items():
+            raw[col] = values  # as read
 
     # ---- order ------------------------------------------------------------------------
-    if not raw.index.is_monotonic_increasing:
+    stamps_i8 = raw.index.asi8
+    in_order = bool((stamps_i8[1:] > stamps_i8[:-1]).all())  # sorted, no duplicate: the usual case
+    if not in_order and not raw.index.is_monotonic_increasing:
         back = np.flatnonzero(np.diff(raw.index.asi8) < 0)
         warnings_.append(f"{path}: row {lines[back[0] + 1]}: stamps out of order (first step back after "
                          f"row {lines[back[0]]}); rows sorted by time")
@@ -793,7 +825,7 @@ def read_logger_file(path, stream: StreamConfig, site: SiteInfo) -> IngestedFile
         raw, lines = raw.iloc[order], lines[order]
 
     # ---- duplicates -------------------------------------------------------------------
-    dup = raw.index.duplicated(keep=False)
+    dup = np.zeros(len(raw), dtype=bool) if in_order else raw.index.duplicated(keep=False)
     if dup.any():
         sub = raw.loc[dup]
         n_distinct = sub.groupby(level=0, sort=False).nunique(dropna=False)

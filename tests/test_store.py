@@ -487,13 +487,15 @@ _TRUTH = make_file("truth.csv", "2025-06-02", 4 * 48, seed=42).raw
 @settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(slices=st.lists(st.tuples(st.integers(0, 4 * 48 - 1), st.integers(1, 4 * 48)), min_size=1, max_size=5),
        holes=st.lists(st.tuples(st.integers(0, 4 * 48 - 1), st.integers(0, 2)), max_size=10),
-       batch=st.booleans())
-def test_overlapping_slices_of_one_truth_rebuild_it(tmp_path_factory, slices, holes, batch):
+       batch=st.booleans(), text=st.booleans())
+def test_overlapping_slices_of_one_truth_rebuild_it(tmp_path_factory, slices, holes, batch, text):
     """Any order of overlapping exports of the same data (with missing cells) rebuilds the
-    data: no conflicts, no duplicates, every non-missing value preserved (invariant)."""
+    data: no conflicts, no duplicates, every non-missing value preserved (invariant). With a
+    text column (the general merge) and without (numbers only: the float merge)."""
     files = []
+    truth = _TRUTH if text else _TRUTH.drop(columns=["AGC"])
     for k, (start, length) in enumerate(slices):
-        part = _TRUTH.iloc[start:start + length].copy()
+        part = truth.iloc[start:start + length].copy()
         for row, col in holes:  # cells missing in this export only
             if start <= row < start + length and (row + k) % 2:
                 part.iat[row - start, col] = np.nan
@@ -506,8 +508,8 @@ def test_overlapping_slices_of_one_truth_rebuild_it(tmp_path_factory, slices, ho
     assert sum(r.conflicts for r in reports) == 0
     got = store.read()["main"]
     assert got.index.is_unique and got.index.is_monotonic_increasing
-    covered = sorted({i for s, n in slices for i in range(s, min(s + n, len(_TRUTH)))})
-    expected = _TRUTH.iloc[covered]
+    covered = sorted({i for s, n in slices for i in range(s, min(s + n, len(truth)))})
+    expected = truth.iloc[covered]
     assert got.index.equals(expected.index)
     values = got[["LE", "H", "TA"]].to_numpy()
     truth = expected[["LE", "H", "TA"]].to_numpy()
@@ -600,3 +602,69 @@ def test_positions_match_get_indexer():
     assert np.array_equal(_positions(index, odd.asi8), index.get_indexer(odd))
     later = pd.DatetimeIndex([pd.Timestamp("2022-01-01", tz="UTC")])
     assert np.array_equal(_positions(index, later.asi8), [-1])
+
+
+# ------------------------------------------------------------------------- float merge
+def _numbers_weeks():
+    """Invented weeks of numbers only (the float merge): two-hour overlaps, holes filled by a
+    later export, a conflicting value, a column that appears in week 1, a stored store, then
+    a gap filled late: a day of week 2 with two columns, then the whole week."""
+    truth = make_file("truth.csv", "2025-06-02", 4 * WEEK, seed=7, columns=("LE", "H", "TA", "RH"),
+                      passthrough=False).raw
+    first = []
+    for k in range(4):
+        raw = truth.iloc[max(k * WEEK - 4, 0):(k + 1) * WEEK].copy()  # two hours of the week before
+        if k == 0:
+            raw = raw.drop(columns=["RH"])
+        raw.iloc[-3:-1, 0] = np.nan  # holes the next export fills
+        if k == 1:
+            raw.iloc[2, 1] += 3.0  # conflicts with week 0 in the overlap
+        first.append(ingested(f"w{k}.csv", raw))
+    week2 = first.pop(2)  # week 2 arrives in the second batch, after week 3 ...
+    late = ingested("late.csv", week2.raw.iloc[100:148][["LE", "TA"]])  # ... after a day of it
+    return first, [late, week2]
+
+
+def _merged(root, batches, supersede, monkeypatch, *, general):
+    import towerflow.store as store_module
+
+    monkeypatch.setattr(store_module, "_now", lambda: pd.Timestamp("2025-07-01 12:00", tz="UTC"))
+    if general:
+        monkeypatch.setattr(store_module._FloatStream, "takes_stored", staticmethod(lambda stored, now: False))
+    out = []
+    for batch in batches:
+        pending = SiteStore(root).prepare(batch, supersede=supersede)
+        out.append((pending._full, pending._log_parts, pending.report, pending.warnings))
+        pending.commit()
+    monkeypatch.undo()
+    return out
+
+
+@pytest.mark.parametrize("supersede", [False, True])
+def test_float_merge_gives_the_general_merge(tmp_path, monkeypatch, supersede):
+    """Files of numbers only merge on numpy arrays; the frames, reports and conflicts logs are
+    those of the general (frame by frame) merge, also over a stored store (regression)."""
+    first, second = _numbers_weeks()
+    fast = _merged(tmp_path / "fast", [first, second], supersede, monkeypatch, general=False)
+    slow = _merged(tmp_path / "slow", [first, second], supersede, monkeypatch, general=True)
+    for (f_full, f_log, f_report, f_warn), (s_full, s_log, s_report, s_warn) in zip(fast, slow):
+        assert f_full.keys() == s_full.keys()
+        for stream in f_full:
+            assert_frame_equal(f_full[stream], s_full[stream], check_exact=True)
+        assert len(f_log) == len(s_log) and f_report == s_report and f_warn == s_warn
+        for a, b in zip(f_log, s_log):
+            assert_frame_equal(a, b, check_exact=True)
+    assert fast[0][2]["conflicts"] >= 1 and fast[0][2]["filled_values"] > 0
+    assert [f["new_columns"] for f in fast[0][2]["files"]] == [["LE", "H", "TA"], ["RH"], []]
+    assert snapshot(tmp_path / "fast") == snapshot(tmp_path / "slow")
+
+
+def test_text_file_after_numbers_continues_in_the_general_merge(tmp_path, monkeypatch):
+    """A file with a text column after files of numbers: the merge goes on from the same frame."""
+    first, _ = _numbers_weeks()
+    text = make_file("text.csv", "2025-07-01", 48, seed=5)  # LE, H, TA and the text column AGC
+    fast = _merged(tmp_path / "fast", [first + [text]], False, monkeypatch, general=False)
+    slow = _merged(tmp_path / "slow", [first + [text]], False, monkeypatch, general=True)
+    assert_frame_equal(fast[0][0]["main"], slow[0][0]["main"], check_exact=True)
+    assert fast[0][2] == slow[0][2]
+    assert fast[0][0]["main"]["AGC"].notna().sum() == 48

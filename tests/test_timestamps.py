@@ -370,6 +370,15 @@ def test_sixty_minute_file_in_thirty_minute_stream_is_error(tmp_path):
     assert "invented_flux.csv" in msg and "another averaging interval" in msg and "\n" not in msg
 
 
+def test_jittered_stamps_all_steps_above_interval_are_not_another_interval(tmp_path):
+    """Stamps 1 s later each row (every step 10:01 in a 10-min stream) are jitter within the snap
+    tolerance, not a file of a longer interval (a case hypothesis found; regression)."""
+    stamps = pd.date_range("2025-06-01 00:00", periods=4, freq="10min") + pd.to_timedelta([-1, 0, 1, 2], unit="s")
+    body = "".join(f"{t:%Y-%m-%d %H:%M:%S},{i}\n" for i, t in enumerate(stamps))
+    ing, _ = read(write(tmp_path, "TIMESTAMP,LE\n" + body), make_stream(fmt="%Y-%m-%d %H:%M:%S", interval=10))
+    assert list(ing.raw.index.tz_convert(None)) == list(pd.date_range("2025-05-31 23:00", periods=4, freq="10min"))
+
+
 def test_ten_minute_file_in_thirty_minute_stream_is_off_grid(tmp_path):
     stamps = pd.date_range("2025-06-01 00:00", periods=6, freq="10min")
     body = "".join(f"{t:%Y-%m-%d %H:%M},{i}\n" for i, t in enumerate(stamps))

@@ -301,6 +301,231 @@ class _Pieces:
         return out
 
 
+class _FloatStream:
+    """A stream's merge, file by file, on numpy arrays while every source column is float64.
+
+    The usual case (logger exports of numbers): the merge of :meth:`SiteStore._merge`, whole
+    frame semantics, without a pandas frame per file. The merged rows are kept as pieces
+    (the stored rows, then the new rows of each file) with a sorted look-up of their stamps;
+    a file's overlap with the merged rows is compared and filled in place, its new rows
+    become a piece. :meth:`frame` builds the one merged frame (rows in time order, columns
+    in order of appearance, then the provenance columns) that the file-by-file merge of
+    :meth:`SiteStore._merge` gives. A file it cannot take (text columns, no rows) goes to the
+    general merge: ``_Pieces(self.frame())`` continues from the same merged frame.
+    """
+
+    def __init__(self, stored: pd.DataFrame | None, now):
+        self.now = now
+        self.stored = stored
+        self.cols: list[str] = []
+        self.col_at: dict[str, int] = {}
+        self.values: list[np.ndarray] = []  # per piece: rows × columns known then (float64)
+        self.source: list[np.ndarray] = []  # per piece: __source_file, __source_sha256 (object)
+        self.source_sha: list[np.ndarray] = []
+        self.changed: list[np.ndarray] = []  # per piece: __changed_by_file, __changed_by_sha256
+        self.changed_sha: list[np.ndarray] = []
+        self.keys = np.empty(0, dtype=np.int64)  # sorted stamps (ns) of the merged rows
+        self.key_piece = np.empty(0, dtype=np.intp)  # their piece
+        self.key_row = np.empty(0, dtype=np.intp)  # and row in the piece
+        self.tz = None
+        if stored is not None:
+            self._add_columns([c for c in stored.columns if c not in _PROV])
+            self.tz = stored.index.tz
+            n = len(stored)
+            self._add_piece(stored[self.cols].to_numpy(dtype=np.float64, copy=True), stored.index.asi8,
+                            *(stored[c].to_numpy(dtype=object, copy=True) for c in
+                              (PROVENANCE_COLUMNS["source_file"], PROVENANCE_COLUMNS["source_sha256"],
+                               PROVENANCE_COLUMNS["changed_by_file"], PROVENANCE_COLUMNS["changed_by_sha256"])),
+                            n=n)
+
+    @staticmethod
+    def takes_stored(stored: pd.DataFrame | None, now) -> bool:
+        """True if the stored frame (None: a new stream) and ``now`` suit the float merge."""
+        if not (isinstance(now, pd.Timestamp) and now.tz is not None):
+            return False
+        if stored is None:
+            return True
+        if len(stored) == 0 or not all(c in stored.columns for c in _PROV):
+            return False
+        index, dtypes = stored.index, stored.dtypes
+        pc = PROVENANCE_COLUMNS
+        return (isinstance(index.dtype, pd.DatetimeTZDtype) and index.dtype.unit == "ns"
+                and str(index.tz) == "UTC" and index.is_unique and index.is_monotonic_increasing
+                and all(dtypes[c] == np.float64 for c in stored.columns if c not in _PROV)
+                and all(dtypes[pc[k]] == object for k in ("source_file", "source_sha256",
+                                                          "changed_by_file", "changed_by_sha256"))
+                and isinstance(dtypes[pc["ingested_at"]], pd.DatetimeTZDtype)
+                and str(dtypes[pc["ingested_at"]].tz) == "UTC")
+
+    @staticmethod
+    def takes(raw: pd.DataFrame, index: pd.DatetimeIndex) -> bool:
+        """True if a checked file (``index``: its UTC stamps) suits the float merge."""
+        return (len(raw) > 0 and index.dtype.unit == "ns"
+                and all(dtype == np.float64 for dtype in raw.dtypes))
+
+    def _add_columns(self, cols) -> None:
+        for c in cols:
+            self.col_at[c] = len(self.cols)
+            self.cols.append(c)
+
+    def _add_piece(self, values, stamps, source, source_sha, changed, changed_sha, *, n) -> None:
+        k = len(self.values)
+        self.values.append(values)
+        self.source.append(source)
+        self.source_sha.append(source_sha)
+        self.changed.append(changed)
+        self.changed_sha.append(changed_sha)
+        rows = np.arange(n, dtype=np.intp)
+        piece = np.full(n, k, dtype=np.intp)
+        if not self.keys.size or not n or stamps[0] > self.keys[-1]:  # appended in time order
+            self.keys = np.concatenate([self.keys, stamps])
+            self.key_piece = np.concatenate([self.key_piece, piece])
+            self.key_row = np.concatenate([self.key_row, rows])
+        else:
+            at = np.searchsorted(self.keys, stamps)  # stamps are new: insert them in order
+            self.keys = np.insert(self.keys, at, stamps)
+            self.key_piece = np.insert(self.key_piece, at, piece)
+            self.key_row = np.insert(self.key_row, at, rows)
+
+    def _widen(self, k: int) -> np.ndarray:
+        """Piece ``k`` with a column for every column known now (NaN in those added later)."""
+        block = self.values[k]
+        if block.shape[1] < len(self.cols):
+            pad = np.full((block.shape[0], len(self.cols) - block.shape[1]), np.nan)
+            block = self.values[k] = np.hstack([block, pad])
+        return block
+
+    def merge(self, store: "SiteStore", ing, cols: list[str], index: pd.DatetimeIndex, name: str,
+              stream: str, interval: pd.Timedelta, supersede: bool, report: AddReport):
+        """Merge one checked file (columns ``cols``, UTC stamps ``index``); the conflicts log part or None."""
+        sha = str(ing.sha256)
+        values = ing.raw.to_numpy(dtype=np.float64)
+        r_i8 = index.asi8
+        n = r_i8.size
+        if self.tz is None:
+            self.tz = index.tz
+        # the file's rows already merged (stamps unique and sorted on both sides)
+        at = np.searchsorted(self.keys, r_i8)
+        hit = at < self.keys.size
+        hit[hit] = self.keys[at[hit]] == r_i8[hit]
+        r_pos = np.flatnonzero(hit)
+        n_ov = r_pos.size
+        s_piece, s_row = self.key_piece[at[r_pos]], self.key_row[at[r_pos]]
+        new_cols = [c for c in cols if c not in self.col_at]
+        common = [c for c in cols if c in self.col_at]
+        r_common = [cols.index(c) for c in common]
+        s_common = [self.col_at[c] for c in common]
+
+        # stored values of the overlap (NaN in columns a piece did not have yet)
+        s_all = np.full((n_ov, len(common)), np.nan)
+        for k in np.unique(s_piece):
+            sel = np.flatnonzero(s_piece == k)
+            block = self.values[k]
+            known = [j for j, c in enumerate(s_common) if c < block.shape[1]]
+            if known:
+                s_all[np.ix_(sel, known)] = block[np.ix_(s_row[sel], [s_common[j] for j in known])]
+        r_all = values[np.ix_(r_pos, r_common)]
+        s_na, r_na = np.isnan(s_all), np.isnan(r_all)
+        compared = ~s_na & ~r_na  # both non-missing
+        differ = compared & ~_equal(s_all, r_all)
+        fill = s_na & ~r_na
+        r_added = values[np.ix_(r_pos, [cols.index(c) for c in new_cols])]
+        extra = (~np.isnan(r_added)).any(axis=1)  # overlap rows with values in columns new to the stream
+
+        n_compared = int(compared.sum())
+        n_differ = int(differ.sum())
+        rows_compared = int(compared.any(axis=1).sum())
+        if (n_compared and rows_compared * interval >= store.clock_reset_min_overlap
+                and n_differ / n_compared >= store.clock_reset_fraction):
+            raise StoreError(
+                f"{n_differ} of {n_compared} values overlapping the store over "
+                f"{_span(rows_compared * interval)} differ from the stored ones: this looks like a logger "
+                f"clock reset that restamped old data; file refused, nothing written", file=ing.path)
+
+        report.new_columns = new_cols
+        report.new_rows = int(n - n_ov)
+        report.conflicts = n_differ
+        report.filled_values = int(fill.sum()) + int((~np.isnan(r_added)).sum())
+        replace = fill | (differ if supersede else False)
+        changed = replace.any(axis=1) | extra
+        report.changed_rows = int(changed.sum())
+        report.superseded = n_differ if supersede else 0
+        report.identical_rows = int(n_ov - report.changed_rows - (differ.any(axis=1) & ~changed).sum())
+
+        log = None
+        if n_differ:  # the log first: it names the values and files before this merge
+            entries = []
+            for i, j in zip(*np.nonzero(differ)):
+                k, row = s_piece[i], s_row[i]
+                entries.append({
+                    "logged_at": self.now, "stream": stream, "timestamp_start": index[r_pos[i]],
+                    "column": common[j], "outcome": "superseded" if supersede else "kept_stored",
+                    "stored_value": float(s_all[i, j]), "new_value": float(r_all[i, j]),
+                    "stored_text": None, "new_text": None,
+                    "stored_file": _text_or(self.changed[k][row], self.source[k][row]),
+                    "stored_sha256": _text_or(self.changed_sha[k][row], self.source_sha[k][row]),
+                    "new_file": name, "new_sha256": sha,
+                })
+            log = pd.DataFrame(entries, columns=_LOG_COLUMNS)
+            what = "the new values replaced the stored ones" if supersede else "the stored values were kept"
+            report.warnings.append(f"{ing.path}: {n_differ} values differ from the store ({what}; "
+                                   "see the store's conflicts log)")
+
+        # the overlap: filled or superseded values, values of columns new to the stream
+        self._add_columns(new_cols)
+        r_new_at = [self.col_at[c] for c in new_cols]
+        for k in np.unique(s_piece):
+            sel = np.flatnonzero(s_piece == k)
+            rows = s_row[sel]
+            block = self._widen(k)
+            if new_cols:
+                block[np.ix_(rows, r_new_at)] = r_added[sel]
+            for j, c in enumerate(s_common):
+                put = np.flatnonzero(replace[sel, j])
+                if put.size:
+                    block[rows[put], c] = r_all[sel[put], j]
+            touched = rows[changed[sel]]
+            if touched.size:
+                self.changed[k][touched] = name
+                self.changed_sha[k][touched] = sha
+        # the new rows: one piece
+        new = np.flatnonzero(~hit)
+        if new.size:
+            if cols == self.cols:
+                block = values[new]  # a copy
+            else:
+                block = np.full((new.size, len(self.cols)), np.nan)
+                block[:, [self.col_at[c] for c in cols]] = values[new]
+            none = np.full(new.size, None, dtype=object)
+            self._add_piece(block, r_i8[new], np.full(new.size, name, dtype=object),
+                            np.full(new.size, sha, dtype=object), none, none.copy(), n=new.size)
+        return log
+
+    def frame(self) -> pd.DataFrame | None:
+        """The merged frame: rows in time order, the source columns, the provenance columns
+        (None for a new stream that no file was merged into)."""
+        if not self.values:
+            return None
+        offsets = np.cumsum([0] + [len(v) for v in self.values[:-1]])
+        take = offsets[self.key_piece] + self.key_row
+        values = np.concatenate([self._widen(k) for k in range(len(self.values))])[take]
+        index = pd.DatetimeIndex(self.keys.view("datetime64[ns]"), name=INDEX_NAME).tz_localize(self.tz)
+        out = pd.DataFrame(values, index=index, columns=list(self.cols), copy=False)
+        pc = PROVENANCE_COLUMNS
+        out[pc["source_file"]] = np.concatenate(self.source)[take]
+        out[pc["source_sha256"]] = np.concatenate(self.source_sha)[take]
+        if self.stored is None:
+            out[pc["ingested_at"]] = self.now
+        else:
+            # the stored rows keep theirs, the new rows get now (in the stored column's unit)
+            stored_at = np.where(self.key_piece == 0, self.key_row, -1)
+            out[pc["ingested_at"]] = self.stored[pc["ingested_at"]].array.take(
+                stored_at, allow_fill=True, fill_value=self.now)
+        out[pc["changed_by_file"]] = np.concatenate(self.changed)[take]
+        out[pc["changed_by_sha256"]] = np.concatenate(self.changed_sha)[take]
+        return out
+
+
 class SiteStore:
     """The store of one site under ``root`` (``DIR/SITE_ID/store``).
 
@@ -608,7 +833,9 @@ class SiteStore:
         log_parts: list[pd.DataFrame] = []
         reports = []
         now = _now()
-        pieces: dict[str, _Pieces] = {}  # merged streams, kept in time-ordered pieces until the end
+        # merged streams, kept in pieces until the end: numpy pieces while every column is a float
+        # (_FloatStream), else time-ordered frames (_Pieces)
+        mergers: dict[str, _FloatStream | _Pieces] = {}
         for ing in ingested_files:
             name = Path(ing.path).name
             stream = str(ing.stream)
@@ -617,7 +844,7 @@ class SiteStore:
                 report.already_ingested = True
                 reports.append(report)
                 continue
-            raw = self._check_ingested(ing)
+            cols, index = self._check_ingested(ing)
             interval = pd.Timedelta(ing.interval)
             entry = new_manifest["streams"].get(stream)
             if entry is not None and pd.Timedelta(seconds=entry["interval_seconds"]) != interval:
@@ -625,9 +852,19 @@ class SiteStore:
                 raise StoreError(
                     f"stream {stream!r} holds {_minutes(stored)} data but this file is {_minutes(interval)}: "
                     "refusing to mix intervals in one stream", file=ing.path)
-            merged, log = pieces.setdefault(stream, _Pieces(frames.get(stream))).merge(
-                lambda stored: self._merge(stored, raw, ing, name, stream, interval,
-                                           supersede, now, report), raw)
+            merger = mergers.get(stream)
+            if merger is None:
+                stored = frames.get(stream)
+                merger = mergers[stream] = (_FloatStream(stored, now) if _FloatStream.takes_stored(stored, now)
+                                            else _Pieces(stored))
+            if isinstance(merger, _FloatStream) and not merger.takes(ing.raw, index):
+                merger = mergers[stream] = _Pieces(merger.frame())  # the general merge from here on
+            if isinstance(merger, _FloatStream):
+                log = merger.merge(self, ing, cols, index, name, stream, interval, supersede, report)
+            else:
+                raw = self._checked_frame(ing, cols, index)
+                _, log = merger.merge(lambda stored: self._merge(stored, raw, ing, name, stream, interval,
+                                                                 supersede, now, report), raw)
             dirty.add(stream)
             if log is not None and len(log):
                 log_parts.append(log)
@@ -637,17 +874,18 @@ class SiteStore:
             record = {k: v for k, v in asdict(report).items() if k not in ("warnings", "already_ingested")}
             record.update({"path": str(ing.path), "interval_seconds": int(interval.total_seconds()),
                            "ingested_at": now.isoformat(),
-                           "first": raw.index[0].isoformat() if len(raw) else None,
-                           "last": raw.index[-1].isoformat() if len(raw) else None})
+                           "first": index[0].isoformat() if len(index) else None,
+                           "last": index[-1].isoformat() if len(index) else None})
             new_manifest["files"].append(record)
             reports.append(report)
-        for stream, parts in pieces.items():
-            frames[stream] = parts.frame()
+        for stream, merger in mergers.items():
+            frames[stream] = merger.frame()
         return PendingChange(store=self, base_sha256=_sha(manifest_bytes), old_manifest=manifest,
                              new_manifest=new_manifest, full_frames=frames, dirty=dirty,
                              log_parts=log_parts, reports=reports, now=now)
 
-    def _check_ingested(self, ing) -> pd.DataFrame:
+    def _check_ingested(self, ing) -> tuple[list[str], pd.DatetimeIndex]:
+        """Check an ingested file's frame; its column names (str) and UTC stamps (StoreError if bad)."""
         raw = ing.raw
         where = ing.path
         if not isinstance(raw, pd.DataFrame):
@@ -669,9 +907,14 @@ class SiteStore:
         for c in cols:
             if c.startswith("__") or c == INDEX_NAME:
                 raise StoreError(f"column name {c!r} is reserved by the store", file=where, column=c)
-        out = raw.copy()
+        return cols, raw.index.tz_convert("UTC").rename(INDEX_NAME)
+
+    @staticmethod
+    def _checked_frame(ing, cols: list[str], index: pd.DatetimeIndex) -> pd.DataFrame:
+        """The checked file's frame as the general merge takes it (a copy, object columns cleaned)."""
+        out = ing.raw.copy()
         out.columns = cols
-        out.index = raw.index.tz_convert("UTC").rename(INDEX_NAME)
+        out.index = index
         return _clean_objects(out)
 
     def _merge(self, stored, raw, ing, name, stream, interval, supersede, now, report):
