@@ -295,13 +295,16 @@ def _local_day(index: pd.DatetimeIndex) -> pd.DatetimeIndex:
     return idx.normalize()
 
 
-def _period_labels(index: pd.DatetimeIndex, period: pd.Timedelta) -> np.ndarray:
-    """Integer label of the correction period (whole local days from the first day)."""
+def _period_labels(index: pd.DatetimeIndex, period: pd.Timedelta, *,
+                   days: pd.DatetimeIndex | None = None) -> np.ndarray:
+    """Integer label of the correction period (whole local days from the first day);
+    ``days``: the local day of each interval when known (:func:`_local_day`)."""
     if period <= pd.Timedelta(0) or period % pd.Timedelta(days=1) != pd.Timedelta(0):
         raise RuleError(f"must be a whole number of days, got {period}", key="closure.correction_period")
-    days = _local_day(index)
+    days = _local_day(index) if days is None else days
     n_days = int(period / pd.Timedelta(days=1))
-    ordinal = ((days - days[0]) // pd.Timedelta(days=1)).to_numpy()
+    stamps = days.to_numpy()
+    ordinal = (stamps - stamps[0]) // np.timedelta64(1, "D")  # whole days since the first
     return ordinal // n_days
 
 
@@ -352,31 +355,33 @@ def bowen_ratio_closure_factors(h, le, available, labels, *, intervals_per_perio
         "le": np.where(paired, le, 0.0),
         "a": np.where(paired, a, 0.0),
     })
-    g = df.groupby("label").sum()
-    sum_t = g["h"] + g["le"]
+    g = df.groupby("label").sum()  # pandas' compensated sums
+    n = g["n"].to_numpy()
+    s_h, s_le, s_a = g["h"].to_numpy(), g["le"].to_numpy(), g["a"].to_numpy()
+    sum_t = s_h + s_le
     with np.errstate(divide="ignore", invalid="ignore"):
-        bowen = g["h"] / g["le"]
-        factor = g["a"] / sum_t
-        mean_t = sum_t / g["n"]
-        one_plus_beta = sum_t / g["le"]  # = 1 + beta without forming beta twice
+        bowen = s_h / s_le
+        factor = s_a / sum_t
+        mean_t = sum_t / n
+        one_plus_beta = sum_t / s_le  # = 1 + beta without forming beta twice
     lo, hi = float(factor_range[0]), float(factor_range[1])
-    reason = pd.Series("", index=g.index, dtype=object)
+    reason = np.full(len(g), "", dtype=object)
     conditions = [
-        (g["n"] < min_coverage * intervals_per_period, "too few intervals with H, LE, Rn and G accepted"),
-        (~(mean_t.abs() >= min_turbulent_flux), "H + LE too small"),
-        (np.isfinite(one_plus_beta) & (one_plus_beta.abs() < bowen_guard), "Bowen ratio near -1"),
+        (n < min_coverage * intervals_per_period, "too few intervals with H, LE, Rn and G accepted"),
+        (~(np.abs(mean_t) >= min_turbulent_flux), "H + LE too small"),
+        (np.isfinite(one_plus_beta) & (np.abs(one_plus_beta) < bowen_guard), "Bowen ratio near -1"),
         (~((factor >= lo) & (factor <= hi)), "factor outside the plausible range"),
     ]
     for mask, text in conditions:  # the first reason that applies is kept
-        reason = reason.where(~(mask.to_numpy() & (reason == "").to_numpy()), text)
+        reason[mask & (reason == "")] = text
     out = pd.DataFrame({
-        "n": g["n"].astype(int),
-        "sum_available": g["a"],
+        "n": n.astype(int),
+        "sum_available": s_a,
         "sum_turbulent": sum_t,
         "bowen_ratio": bowen,
-        "factor": factor.where(reason == ""),
+        "factor": np.where(reason == "", factor, np.nan),
         "skip_reason": reason,
-    })
+    }, index=g.index)
     return out
 
 
@@ -453,13 +458,13 @@ def assess_closure(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict) 
 
     # --- daily sums (Leuning et al. 2012) ---
     day = _local_day(index)
-    dfd = pd.DataFrame({"y": y, "x": x, "n": use.astype(int)}, index=day)
-    gd = dfd.groupby(level=0)
+    gd = pd.DataFrame({"y": y, "x": x, "n": use.astype(int)}, index=day).groupby(level=0)
     n_day = gd["n"].sum()
     cover = n_day / per_day
     to_mj = 86400.0 / 1e6  # mean W m-2 over a day -> MJ m-2 d-1
-    day_y = gd["y"].mean() * to_mj
-    day_x = gd["x"].mean() * to_mj
+    day_means = gd[["y", "x"]].mean()  # pandas' compensated means
+    day_y = day_means["y"] * to_mj
+    day_x = day_means["x"] * to_mj
     complete = cover >= float(cfg["daily_min_coverage"])
     daily_stats = closure_statistics(day_y[complete], day_x[complete], min_n=3)
     daily_stats["unit"] = "MJ m-2 d-1"
@@ -472,29 +477,32 @@ def assess_closure(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict) 
         basis = "daily sums of Rn only (no g)"
 
     # --- monthly ---
-    month = pd.PeriodIndex(index.tz_localize(None) if index.tz is not None else index, freq="M")
+    month_code, month_values = pd.factorize(
+        pd.PeriodIndex(index.tz_localize(None) if index.tz is not None else index, freq="M"))
+    if not has_g:
+        day_month = day_x.index.to_period("M")
     monthly = []
-    for m in pd.unique(month):
-        sel = (month == m)
+    for k, m in enumerate(month_values):
         if has_g:
+            sel = month_code == k
             s = closure_statistics(y[sel], x[sel], min_n=min_n)
         else:
-            msel = complete & (day_x.index.to_period("M") == m)
+            msel = complete & (day_month == m)
             s = closure_statistics(day_y[msel], day_x[msel], min_n=3)
         monthly.append({"month": str(m), **s})
 
     # --- mean diurnal course ---
     tod = (index - index.normalize()) if index.tz is None else (index.tz_localize(None) - index.tz_localize(None).normalize())
     minutes = (tod // pd.Timedelta(minutes=1)).to_numpy()
-    dfc = pd.DataFrame({"minute": minutes, "y": y, "x": x, "n": use.astype(int)})
-    gc = dfc.groupby("minute").agg(turbulent_flux=("y", "mean"), available_energy=("x", "mean"), n=("n", "sum"))
+    gc = pd.DataFrame({"y": y, "x": x}).groupby(minutes).mean()  # pandas' compensated means
+    n_minute = np.bincount(np.searchsorted(gc.index.to_numpy(), minutes), weights=use, minlength=len(gc))
     diurnal = [{"time": f"{int(mi) // 60:02d}:{int(mi) % 60:02d}",
-                "turbulent_flux": _num(r.turbulent_flux), "available_energy": _num(r.available_energy),
-                "n": int(r.n)} for mi, r in gc.iterrows()]
+                "turbulent_flux": _num(yt), "available_energy": _num(xa), "n": int(nn)}
+               for mi, yt, xa, nn in zip(gc.index.tolist(), gc["y"].tolist(), gc["x"].tolist(), n_minute.tolist())]
 
     # --- Bowen-ratio-preserving correction (Twine et al. 2000) on period sums ---
     period = duration(cfg["correction_period"])
-    labels = _period_labels(index, period)
+    labels = _period_labels(index, period, days=day)
     n_days_period = max(int(round(period / pd.Timedelta(days=1))), 1)
     ok_h = np.isfinite(h)
     ok_le = np.isfinite(le)
@@ -521,17 +529,20 @@ def assess_closure(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict) 
     }, index=index)
 
     # --- per-day table ---
+    ok_day = complete.to_numpy()
     daily = pd.DataFrame({
-        "ebr": (day_y / day_x).where(complete),
-        "available_energy_mj": day_x.where(complete),
-        "turbulent_flux_mj": day_y.where(complete),
-        "n_closure_intervals": n_day.astype(int),
-    })
-    day_factor = pd.Series(factor, index=day).groupby(level=0).first()
-    day_reason = pd.Series(reason, index=day).groupby(level=0).first()
+        "ebr": np.where(ok_day, (day_y / day_x).to_numpy(), np.nan),
+        "available_energy_mj": np.where(ok_day, day_x.to_numpy(), np.nan),
+        "turbulent_flux_mj": np.where(ok_day, day_y.to_numpy(), np.nan),
+        "n_closure_intervals": n_day.to_numpy().astype(int),
+    }, index=day_y.index)
+    # a day lies in one correction period: its factor and reason are those of its first interval
+    first_of_day = np.searchsorted(day.to_numpy(), daily.index.to_numpy()) if day.is_monotonic_increasing \
+        else pd.Series(np.arange(len(day)), index=day).groupby(level=0).min().reindex(daily.index).to_numpy()
+    day_factor = pd.Series(factor[first_of_day], index=daily.index)
     daily["closure_factor"] = day_factor
     daily["closure_corrected"] = day_factor.notna()
-    daily["closure_skip_reason"] = day_reason.fillna("").astype(str)
+    daily["closure_skip_reason"] = pd.Series(reason[first_of_day], index=daily.index).fillna("").astype(str)
     daily.index.name = "date"
 
     n_periods = int(len(fac_table))

@@ -120,8 +120,16 @@ _CLOCK_IGNORES = flagbits.CONSISTENCY | flagbits.CLOCK
 
 
 def _iso_week(days: pd.DatetimeIndex) -> np.ndarray:
-    iso = days.isocalendar()
-    code = iso["year"].to_numpy(dtype=np.int64) * 100 + iso["week"].to_numpy(dtype=np.int64)
+    """ISO 8601 week label ("2025-W07") of each day: the week of a date is that of its
+    Thursday, numbered within the Thursday's calendar year (week 1 holds the first Thursday)."""
+    days = pd.DatetimeIndex(days)
+    if days.tz is not None:
+        days = days.tz_localize(None)  # the wall-clock date
+    d = days.to_numpy().astype("datetime64[D]").astype(np.int64)  # days since 1970-01-01, a Thursday
+    thursday = d - (d + 3) % 7 + 3  # (d + 3) % 7: Monday 0 ... Sunday 6
+    year_start = thursday.astype("datetime64[D]").astype("datetime64[Y]")
+    week = (thursday - year_start.astype("datetime64[D]").astype(np.int64)) // 7 + 1
+    code = (year_start.astype(np.int64) + 1970) * 100 + week
     unique, inverse = np.unique(code, return_inverse=True)  # format each week once, not each day
     labels = np.array([f"{c // 100}-W{c % 100:02d}" for c in unique.tolist()], dtype=object)
     return labels[inverse.reshape(-1)]
@@ -233,6 +241,31 @@ def offset_from_correlation(lags: np.ndarray, corr: np.ndarray) -> tuple[float, 
     delta = 0.5 * (c0 - c2) / denom if denom < 0 else 0.0
     spacing = float(lags[1] - lags[0])
     return float(lags[k] + delta * spacing), peak
+
+
+def _offsets_from_correlation(lags: np.ndarray, corr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`offset_from_correlation` of every row of ``corr`` at once (the same arithmetic)."""
+    corr = np.asarray(corr, dtype=float)
+    n_rows, n_lags = corr.shape
+    offset = np.full(n_rows, np.nan)
+    peak = np.full(n_rows, np.nan)
+    if n_lags < 3 or n_rows == 0:
+        return offset, peak
+    finite = np.isfinite(corr)
+    has = finite.any(axis=1)
+    k = np.argmax(np.where(finite, corr, -np.inf), axis=1)  # the first maximum, as numpy.nanargmax
+    rows = np.arange(n_rows)
+    peak = np.where(has, corr[rows, k], np.nan)
+    inner = has & (k > 0) & (k < n_lags - 1)
+    kk = np.clip(k, 1, n_lags - 2)
+    c0, c1, c2 = corr[rows, kk - 1], corr[rows, kk], corr[rows, kk + 1]
+    inner &= np.isfinite(c0) & np.isfinite(c2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        denom = c0 - 2 * c1 + c2
+        delta = np.where(denom < 0, 0.5 * (c0 - c2) / denom, 0.0)
+    spacing = float(lags[1] - lags[0])
+    offset = np.where(inner, lags[kk] + delta * spacing, np.nan)
+    return offset, peak
 
 
 def _roughness(x: np.ndarray) -> np.ndarray:
@@ -349,6 +382,49 @@ def longest_flat_run(values: np.ndarray) -> int:
     return int(counts.max()) if counts.size else 0
 
 
+def _group_max(values: np.ndarray, codes: np.ndarray, n_groups: int) -> np.ndarray:
+    """Largest value per group, NaN ignored (NaN for a group without a value)."""
+    out = np.full(n_groups, -np.inf)
+    np.fmax.at(out, codes, np.asarray(values, dtype=float))
+    return np.where(np.isneginf(out), np.nan, out)
+
+
+def _weekly_median(x: np.ndarray, use: np.ndarray, week_code: np.ndarray, n_weeks: int,
+                   min_values: int) -> list:
+    """Median of ``x[use]`` per week (None below ``min_values`` values), as numpy.median
+    computes it: the middle value, or the mean of the two middle values."""
+    sel = np.flatnonzero(use)
+    order = np.lexsort((x[sel], week_code[sel]))  # by week, then by value
+    values = x[sel][order]
+    counts = np.bincount(week_code[sel], minlength=n_weeks)
+    start = np.concatenate(([0], np.cumsum(counts)[:-1]))
+    out = []
+    for k in range(n_weeks):
+        c = int(counts[k])
+        if c < max(int(min_values), 1):
+            out.append(None)
+            continue
+        lo, hi = start[k] + (c - 1) // 2, start[k] + c // 2
+        out.append(float((values[lo] + values[hi]) / 2.0))
+    return out
+
+
+def _weekly_longest_flat_run(x: np.ndarray, week: np.ndarray, n_weeks: int) -> np.ndarray:
+    """:func:`longest_flat_run` of every week at once; ``x`` and ``week`` in time order
+    within each week and grouped by week (a run never continues into the next week)."""
+    x = np.asarray(x, dtype=float)
+    finite = np.isfinite(x)
+    same = np.zeros(x.size, dtype=bool)
+    same[1:] = (x[1:] == x[:-1]) & finite[1:] & (week[1:] == week[:-1])
+    run_id = np.cumsum(~same) - 1
+    counts = np.bincount(run_id[finite], minlength=int(run_id[-1]) + 1 if x.size else 0)
+    best = np.zeros(n_weeks, dtype=np.int64)
+    if x.size:
+        first_of_run = np.flatnonzero(~same)
+        np.maximum.at(best, week[first_of_run], counts)
+    return best
+
+
 # ---------------------------------------------------------------------------
 # the stage
 # ---------------------------------------------------------------------------
@@ -386,12 +462,15 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
     lat, lon = float(site.latitude), float(site.longitude)
     local = index.tz_localize(None) if index.tz is not None else index
     day = local.normalize()
-    week = _iso_week(day)
-    week_code, week_uniques = pd.factorize(week)
+    day_code, day_values = pd.factorize(day)  # the ISO week of each distinct day, not of each interval
+    week_of_day, week_uniques = pd.factorize(_iso_week(pd.DatetimeIndex(day_values)))
+    week_code = week_of_day[day_code]  # weeks numbered in order of appearance
     week_labels = [str(w) for w in week_uniques]
+    n_weeks = len(week_labels)
     # positions of each week's intervals (ascending), once: index arrays, not one boolean mask
     # of the whole record per week (that costs weeks × intervals in time and memory)
     order = np.argsort(week_code, kind="stable")
+    weeks_in_order = bool(np.all(np.diff(week_code) >= 0))  # each week one run of intervals: order is 1, 2, …
     bounds = np.searchsorted(week_code[order], np.arange(len(week_labels) + 1))
     in_week = {wk: order[bounds[k]:bounds[k + 1]] for k, wk in enumerate(week_labels)}
     findings: list[dict] = []
@@ -413,10 +492,11 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
         is_day = pot0 > 0
 
     weeks: dict[str, dict] = {}
+    day_text = np.datetime_as_string(day_values.to_numpy(), unit="D")
     for wk in week_labels:
         sel = in_week[wk]
-        weeks[wk] = {"week": wk, "start": str(day[sel][0].date()), "end": str(day[sel][-1].date()),
-                     "n_intervals": int(sel.size)}
+        weeks[wk] = {"week": wk, "start": str(day_text[day_code[sel[0]]]),
+                     "end": str(day_text[day_code[sel[-1]]]), "n_intervals": int(sel.size)}
 
     # ------------------------------------------------------------------ clock
     rad_var = "rg" if "rg" in frame and np.isfinite(_accepted(frame, flags, "rg")).any() else (
@@ -430,10 +510,13 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
     if rad_var is not None and n >= per_day:
         rad = _accepted(frame, flags, rad_var, ignore=_CLOCK_IGNORES)
         # whole local days only
-        counts = pd.Series(1, index=day).groupby(level=0).sum()
-        full_days = counts.index[counts.to_numpy() == per_day]
-        pos = pd.Series(np.arange(n), index=day)
-        first_pos = pos.groupby(level=0).first().reindex(full_days).to_numpy()
+        counts = np.bincount(day_code, minlength=len(day_values))
+        first_of_day = np.full(len(day_values), n, dtype=np.int64)
+        np.minimum.at(first_of_day, day_code, np.arange(n))
+        whole = np.flatnonzero(counts == per_day)
+        order_days = np.argsort(day_values[whole], kind="stable")  # sorted by date
+        full_days = pd.DatetimeIndex(day_values[whole[order_days]])
+        first_pos = first_of_day[whole[order_days]]
         rows = first_pos[:, None] + np.arange(per_day)[None, :]
         day_rad = rad[rows] if len(full_days) else np.empty((0, per_day))
         day_pot = pot0[rows] if len(full_days) else np.empty((0, per_day))
@@ -450,10 +533,12 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
         starts = index[first_pos[cand_idx]] if cand_idx.size else index[:0]
         lags, corr, _ = daily_lag_correlation(day_rad[cand_idx], starts, interval, lat, lon,
                                               search=search, step=step)
+        day_offsets, day_peaks = _offsets_from_correlation(lags, corr)
+        full_day_text = np.datetime_as_string(full_days.to_numpy(), unit="D")
         for j, d in enumerate(cand_idx):
-            off, peak = offset_from_correlation(lags, corr[j])
+            off, peak = day_offsets[j], day_peaks[j]
             if peak >= float(cfg["clear_min_correlation"]) and math.isfinite(off):
-                daily_offsets.append({"date": str(full_days[d].date()), "offset_minutes": off,
+                daily_offsets.append({"date": str(full_day_text[d]), "offset_minutes": off,
                                       "correlation": peak, "_day": full_days[d], "_row": j})
         # steps and drift across the clear days
         if daily_offsets:
@@ -466,11 +551,12 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
                 seg[st["_pos"]:] += 1
             for o, s_ in zip(daily_offsets, seg):
                 o["segment"] = int(s_)
-            t_days = np.array([(o["_day"] - daily_offsets[0]["_day"]) / pd.Timedelta(days=1) for o in daily_offsets])
+            clear_days = pd.DatetimeIndex([o["_day"] for o in daily_offsets])
+            t_days = ((clear_days - clear_days[0]) / pd.Timedelta(days=1)).to_numpy(dtype=float)
             if len(daily_offsets) >= int(cfg["clock_drift_min_days"]) and np.ptp(t_days) >= 7:
                 drift_per_week = _num(clock_drift(t_days, d_off, seg) * 7.0)
             # per-week offsets: the mean correlation curve of the week's clear days
-            day_week = _iso_week(pd.DatetimeIndex([o["_day"] for o in daily_offsets]))
+            day_week = _iso_week(clear_days)
             rows_by_week: dict[str, list[int]] = {}
             for o, w_ in zip(daily_offsets, day_week):
                 rows_by_week.setdefault(w_, []).append(o["_row"])
@@ -484,19 +570,21 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
                     off, _ = offset_from_correlation(lags, np.nanmean(corr[rows_wk], axis=0))
                     info["clock_offset_minutes"] = _num(off, 2)
             # weeks without a clear day inherit the offset of the step-free segment around them
-            seg_meds = pd.Series(d_off).groupby(seg).median()
-            seg_first = pd.Series([o["_day"] for o in daily_offsets]).groupby(seg).min()
-            seg_last = pd.Series([o["_day"] for o in daily_offsets]).groupby(seg).max()
-            seg_size = pd.Series(seg).value_counts()
+            # (seg is non-decreasing: each segment is a run of consecutive clear days)
+            seg_ids, seg_start, seg_size = np.unique(seg, return_index=True, return_counts=True)
+            seg_meds = [float(np.median(d_off[a_:a_ + c_])) for a_, c_ in zip(seg_start, seg_size)]
+            clear_dates = clear_days.to_numpy()
+            seg_first = clear_dates[seg_start]
+            seg_last = clear_dates[seg_start + seg_size - 1]
             for wk in week_labels:
                 info = weeks[wk]
                 if info["clock_offset_minutes"] is not None:
                     continue
-                first = pd.Timestamp(info["start"])
-                last = pd.Timestamp(info["end"])
-                for s_ in seg_meds.index:
-                    if seg_size[s_] >= 3 and seg_first[s_] <= first and last <= seg_last[s_]:
-                        info["clock_offset_minutes"] = _num(seg_meds[s_], 2)
+                first = np.datetime64(info["start"], "ns")
+                last = np.datetime64(info["end"], "ns")
+                for k_seg in range(seg_ids.size):
+                    if seg_size[k_seg] >= 3 and seg_first[k_seg] <= first and last <= seg_last[k_seg]:
+                        info["clock_offset_minutes"] = _num(seg_meds[k_seg], 2)
                         info["clock_offset_inferred"] = True
         for o in daily_offsets:
             o["offset_minutes"] = _num(o["offset_minutes"], 2)
@@ -536,22 +624,20 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
         finding("clock_drift", week_labels[-1], "watch",
                 f"Logger clock drifts by {drift_per_week:+.1f} min per week. Synchronise the logger clock "
                 f"(time server or GPS) at the next visit.")
-    suspect_clock = np.isin(week, suspect_weeks)
+    suspect_clock = np.isin(np.array(week_labels, dtype=object), suspect_weeks)[week_code] if n else \
+        np.zeros(0, dtype=bool)
 
     # ------------------------------------------------------------------ midday signs
-    day_max_pot = pd.Series(pot0, index=day).groupby(level=0).transform("max").to_numpy()
+    day_max_pot = _group_max(pot0, day_code, len(day_values))[day_code]
     midday = (pot0 >= float(cfg["midday_fraction"]) * day_max_pot) & (
         day_max_pot >= float(cfg["midday_min_potential"])) & ~frozen
     min_iv = int(cfg["midday_min_intervals"])
     rn_min = float(cfg["midday_min_net_radiation"])
     signs = {v: _accepted(frame, flags, v) for v in ("rn", "g", "h", "le") if v in frame}
-    for wk in week_labels:
-        sel = in_week[wk][midday[in_week[wk]]]
-        med = {}
-        for v, x in signs.items():
-            vals = x[sel]
-            vals = vals[np.isfinite(vals)]
-            med[v] = float(np.median(vals)) if vals.size >= min_iv else None
+    week_medians = {v: _weekly_median(x, midday & np.isfinite(x), week_code, n_weeks, min_iv)
+                    for v, x in signs.items()}
+    for k_wk, wk in enumerate(week_labels):
+        med = {v: week_medians[v][k_wk] for v in signs}
         weeks[wk]["midday_median"] = {v: _num(m, 1) for v, m in med.items()}
         rn_med = med.get("rn")
         if rn_med is not None:
@@ -582,16 +668,17 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
     # ------------------------------------------------------------------ rg vs clear-sky envelope
     if "rg" in frame:
         rg = _accepted(frame, flags, "rg")
-        dfr = pd.DataFrame({"rg": rg, "cs": np.where(np.isfinite(rg), clear_sky, np.nan)}, index=day)
-        per_day_max = dfr.groupby(level=0).max()
-        ok_day = per_day_max["cs"] >= float(cfg["midday_min_potential"]) * 0.5
-        ratio_day = (per_day_max["rg"] / per_day_max["cs"]).where(ok_day)
-        ratio_week = ratio_day.groupby(_iso_week(pd.DatetimeIndex(ratio_day.index))).max()
+        rg_max = _group_max(rg, day_code, len(day_values))
+        cs_max = _group_max(np.where(np.isfinite(rg), clear_sky, np.nan), day_code, len(day_values))
+        ok_day = cs_max >= float(cfg["midday_min_potential"]) * 0.5
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio_day = np.where(ok_day, rg_max / cs_max, np.nan)
+        ratio_week = _group_max(ratio_day, week_of_day, n_weeks)
         low, high = float(cfg["rg_envelope_low"]), float(cfg["rg_envelope_high"])
         persist = int(cfg["rg_envelope_weeks"])
         run_low = run_high = 0
-        for wk in week_labels:
-            r = ratio_week.get(wk, np.nan)
+        for k_wk, wk in enumerate(week_labels):
+            r = ratio_week[k_wk]
             weeks[wk]["rg_clear_sky_ratio"] = _num(r, 3)
             if not np.isfinite(r):
                 continue
@@ -645,29 +732,34 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
         rg = _accepted(frame, flags, "rg")
         sw = _accepted(frame, flags, "sw_out")
         use = midday & (rg >= float(cfg["albedo_min_rg"])) & np.isfinite(rg) & np.isfinite(sw)
+        # per day (integer day codes, in time order: the working frame's index is sorted)
         sums = pd.DataFrame({"rg": np.where(use, rg, 0.0), "sw": np.where(use, sw, 0.0),
-                             "n": use.astype(int)}, index=day).groupby(level=0).sum()
-        alb = (sums["sw"] / sums["rg"]).where(sums["n"] >= 2).dropna()
+                             "n": use.astype(int)}).groupby(day_code).sum()  # pandas' compensated sums
+        alb = pd.Series(np.where(sums["n"].to_numpy() >= 2, (sums["sw"] / sums["rg"]).to_numpy(), np.nan),
+                        index=pd.DatetimeIndex(day_values[sums.index.to_numpy()])).sort_index().dropna()
         if alb.size:
             ref = alb.rolling(duration(cfg["albedo_window"]), closed="left").median()
-            jump = (alb - ref).abs() > float(cfg["albedo_jump"])
-            for d in alb.index[jump.fillna(False).to_numpy()]:
-                albedo_jumps.append({"date": str(d.date()), "albedo": _num(alb[d], 3),
-                                     "previous": _num(ref[d], 3)})
-            alb_week = alb.groupby(_iso_week(pd.DatetimeIndex(alb.index))).median()
-            jump_week = _iso_week(pd.DatetimeIndex([pd.Timestamp(j["date"]) for j in albedo_jumps])) \
-                if albedo_jumps else np.array([], dtype=object)
-            for wk in week_labels:
-                if wk in alb_week.index:
-                    weeks[wk]["albedo_median"] = _num(alb_week[wk], 3)
-                js = [j for j, w_ in zip(albedo_jumps, jump_week) if w_ == wk]
+            jump = ((alb - ref).abs() > float(cfg["albedo_jump"])).to_numpy()
+            alb_values, ref_values = alb.to_numpy(), ref.to_numpy()
+            alb_text = np.datetime_as_string(alb.index.to_numpy(), unit="D")
+            alb_week_code = week_of_day[day_values.get_indexer(alb.index)]
+            for i in np.flatnonzero(jump).tolist():
+                albedo_jumps.append({"date": str(alb_text[i]), "albedo": _num(alb_values[i], 3),
+                                     "previous": _num(ref_values[i], 3), "_week": int(alb_week_code[i])})
+            alb_week = alb.groupby(alb_week_code).median().to_dict()
+            for k_wk, wk in enumerate(week_labels):
+                if k_wk in alb_week:
+                    weeks[wk]["albedo_median"] = _num(alb_week[k_wk], 3)
+                js = [j for j in albedo_jumps if j["_week"] == k_wk]
                 if js:
                     text = "; ".join(f"{j['date']}: {j['previous']:.2f} -> {j['albedo']:.2f}" for j in js)
                     finding("albedo_jump", wk, "watch",
                             f"Midday albedo jumped ({text}). Unless the surface changed (mowing, harvest, snow), "
                             "check the levelling and the view of the downward-facing pyranometer.")
-                elif wk in alb_week.index:
-                    finding("albedo_jump", wk, "ok", f"Midday albedo steady (median {alb_week[wk]:.2f}).")
+                elif k_wk in alb_week:
+                    finding("albedo_jump", wk, "ok", f"Midday albedo steady (median {alb_week[k_wk]:.2f}).")
+            for j in albedo_jumps:
+                del j["_week"]
 
     # ------------------------------------------------------------------ flat lines
     watch_n = duration(cfg["flat_line_watch"]) / interval
@@ -686,18 +778,20 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
         if v == "vpd":
             x[x <= 0.01] = np.nan  # likewise 0 kPa
         flat_flagged = (flags[v].to_numpy() & flagbits.FLAT_LINE) != 0 if v in flags else np.zeros(n, bool)
-        for wk in week_labels:
-            sel = in_week[wk]
-            run = longest_flat_run(x[sel])
-            hours = run * interval / pd.Timedelta(hours=1)
-            weeks[wk].setdefault("longest_flat_line_hours", {})[v] = _num(hours, 2)
-            n_flag = int(flat_flagged[sel].sum())
-            if run >= act_n or run >= watch_n:
-                severity = "act" if run >= act_n else "watch"
-                finding("flat_line", wk, severity,
-                        f"{v} repeated the same value for {hours:.1f} h"
-                        + (f" ({n_flag} intervals flagged as flat line)" if n_flag else "")
-                        + ": the sensor or its logger channel may be stuck; check it.")
+        runs = _weekly_longest_flat_run(x if weeks_in_order else x[order],
+                                        week_code if weeks_in_order else week_code[order], n_weeks)
+        # hours as Timedelta arithmetic gives them: (run · interval [ns]) / 1 h [ns]
+        run_hours = ((runs * interval.value) / pd.Timedelta(hours=1).value).tolist()
+        n_flagged = np.bincount(week_code[flat_flagged], minlength=n_weeks)
+        for k_wk, wk in enumerate(week_labels):
+            weeks[wk].setdefault("longest_flat_line_hours", {})[v] = round(run_hours[k_wk], 2)
+        for k_wk in np.flatnonzero((runs >= act_n) | (runs >= watch_n)).tolist():
+            wk, run, hours, n_flag = week_labels[k_wk], int(runs[k_wk]), run_hours[k_wk], int(n_flagged[k_wk])
+            severity = "act" if run >= act_n else "watch"
+            finding("flat_line", wk, severity,
+                    f"{v} repeated the same value for {hours:.1f} h"
+                    + (f" ({n_flag} intervals flagged as flat line)" if n_flag else "")
+                    + ": the sensor or its logger channel may be stuck; check it.")
 
     # ------------------------------------------------------------------ closure per week
     if all(v in frame for v in ("h", "le", "rn")):
@@ -706,16 +800,18 @@ def assess_health(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: dict, *
             a = available_energy(frame, flags, rules=rules, site=site).to_numpy(dtype=float)
         t = _accepted(frame, flags, "h") + _accepted(frame, flags, "le")
         ok = np.isfinite(a) & np.isfinite(t) & ~frozen
-        per_week = pd.DataFrame({"a": np.where(ok, a, 0.0), "t": np.where(ok, t, 0.0), "n": ok.astype(int),
-                                 "all": 1}, index=week).groupby(level=0, sort=False).sum()
+        per_week = pd.DataFrame({"a": np.where(ok, a, 0.0), "t": np.where(ok, t, 0.0)}).groupby(
+            week_code).sum()  # pandas' compensated sums, as before
+        sum_a, sum_t = per_week["a"].to_numpy(), per_week["t"].to_numpy()
+        n_ok = np.bincount(week_code[ok], minlength=n_weeks)
+        n_all = np.bincount(week_code, minlength=n_weeks)
         lo, hi = (float(v) for v in cfg["closure_ebr_range"])
         ebr_series = []
         for k, wk in enumerate(week_labels):
-            r = per_week.loc[wk]
-            if r["n"] < float(cfg["closure_min_coverage"]) * r["all"] or r["a"] <= 0:
+            if n_ok[k] < float(cfg["closure_min_coverage"]) * n_all[k] or sum_a[k] <= 0:
                 weeks[wk]["ebr"] = None
                 continue
-            e = r["t"] / r["a"]
+            e = float(sum_t[k] / sum_a[k])
             weeks[wk]["ebr"] = _num(e, 3)
             ebr_series.append((k, e))
             if not (lo <= e <= hi):

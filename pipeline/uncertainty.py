@@ -278,14 +278,21 @@ def _fit_bins(m_abs: np.ndarray, d_abs: np.ndarray, n_bins: int):
     """σ per quantile bin of |m| from the median |δ|, and a, b ≥ 0 fitted to the bins."""
     edges = np.unique(np.quantile(m_abs, np.linspace(0.0, 1.0, int(n_bins) + 1)))
     which = np.clip(np.searchsorted(edges, m_abs, side="right") - 1, 0, max(edges.size - 2, 0))
+    n_k = max(edges.size - 1, 1)
+    counts = np.bincount(which, minlength=n_k)
+    start = np.concatenate(([0], np.cumsum(counts)))
+    order = np.argsort(which, kind="stable")  # by bin; the pairs keep their order within a bin
+    m_by_bin, d_by_bin = m_abs[order], d_abs[order]
+    d_sorted = d_abs[np.lexsort((d_abs, which))]  # by bin, then by |δ|: medians by position
     bins = []
-    for k in range(max(edges.size - 1, 1)):
-        sel = which == k
-        if sel.sum() >= 5:
-            bins.append({"flux_abs_mean": float(m_abs[sel].mean()),
-                         "sd": float(np.median(d_abs[sel]) / LAPLACE_MEDIAN_ABS_DIFFERENCE),
-                         "sd_from_mean": float(d_abs[sel].mean() / LAPLACE_MEAN_ABS_DIFFERENCE),
-                         "n": int(sel.sum())})
+    for k in range(n_k):
+        a, c = int(start[k]), int(counts[k])
+        if c >= 5:
+            median = (d_sorted[a + (c - 1) // 2] + d_sorted[a + c // 2]) / 2.0  # as numpy.median
+            bins.append({"flux_abs_mean": float(m_by_bin[a:a + c].mean()),
+                         "sd": float(median / LAPLACE_MEDIAN_ABS_DIFFERENCE),
+                         "sd_from_mean": float(d_by_bin[a:a + c].mean() / LAPLACE_MEAN_ABS_DIFFERENCE),
+                         "n": c})
     if len(bins) < 2:
         return float("nan"), float("nan"), bins
     xb = np.array([b["flux_abs_mean"] for b in bins])
@@ -419,22 +426,39 @@ def time_of_day_spread(x, index: pd.DatetimeIndex, interval: pd.Timedelta, *, ha
     grid = np.full((days, per_day), np.nan)
     grid[pos // per_day, pos % per_day] = x
     # ±1 interval of clock time: neighbouring columns (wrapping over midnight)
-    stack = np.stack([np.roll(grid, s, axis=1) for s in (-1, 0, 1)], axis=2)
-    v = np.isfinite(stack)
-    s1 = np.where(v, stack, 0.0).sum(axis=2)
-    s2 = np.where(v, stack * stack, 0.0).sum(axis=2)
-    cnt = v.sum(axis=2).astype(float)
+    shifted = [np.roll(grid, s, axis=1) for s in (-1, 0, 1)]
+    vals = [np.where(np.isfinite(a), a, 0.0) for a in shifted]
+    s1 = (vals[0] + vals[1]) + vals[2]
+    s2 = (vals[0] * vals[0] + vals[1] * vals[1]) + vals[2] * vals[2]
+    cnt = (np.isfinite(shifted[0]).astype(float) + np.isfinite(shifted[1])) + np.isfinite(shifted[2])
     w = 2 * int(half_window_days) + 1
     kernel = np.ones(w)
 
     def roll_days(a):
-        return np.apply_along_axis(lambda col: np.convolve(col, kernel, mode="same"), 0, a)
+        """Each clock-time column summed over ±``half_window_days`` days (the days that exist)."""
+        h = int(half_window_days)
+        return np.array([np.convolve(col, kernel, mode="full")[h:h + a.shape[0]] for col in a.T]).T
 
-    S1, S2, C = roll_days(s1), roll_days(s2), roll_days(cnt)
+    S1, S2 = roll_days(s1), roll_days(s2)
+    # the counts are whole numbers: their window sums by differences of cumulative sums are exact
+    h = int(half_window_days)
+    c_cum = np.concatenate((np.zeros((1, per_day)), np.cumsum(cnt, axis=0)))
+    top = np.minimum(np.arange(days) + h + 1, days)
+    C = c_cum[top] - c_cum[np.maximum(np.arange(days) - h, 0)]
     with np.errstate(invalid="ignore", divide="ignore"):
         var = (S2 - S1 * S1 / C) / (C - 1.0)
     sd = np.where(C >= max(int(min_values), 2), np.sqrt(np.maximum(var, 0.0)), np.nan)
     return sd[pos // per_day, pos % per_day]
+
+
+def _label_is(values, names) -> np.ndarray:
+    """True where the label equals one of ``names`` (labels compared as they are: a missing
+    label equals no name)."""
+    v = np.asarray(values, dtype=object)
+    out = np.zeros(v.shape, dtype=bool)
+    for name in names:
+        out |= v == name
+    return out
 
 
 def fill_error_sd(fill_sd, method, quality, cv_rmse: dict, *, reduced=None, spread=None) -> np.ndarray:
@@ -460,9 +484,8 @@ def fill_error_sd(fill_sd, method, quality, cv_rmse: dict, *, reduced=None, spre
     numpy.ndarray
         NaN where the value is measured or not filled.
     """
-    method = np.asarray(method, dtype=object).astype(str)
-    quality = np.asarray(quality, dtype=object).astype(str)
-    filled = (method != "measured") & (method != "not_filled")
+    method = np.asarray(method, dtype=object)
+    filled = ~_label_is(method, ("measured", "not_filled"))
     sd = np.asarray(fill_sd, dtype=float).copy()
     sd = np.where(np.isfinite(sd), sd, 0.0)
     rmse = np.zeros(method.size)
@@ -474,7 +497,7 @@ def fill_error_sd(fill_sd, method, quality, cv_rmse: dict, *, reduced=None, spre
         if known:
             rmse = np.where(filled & (rmse == 0.0), max(known), rmse)
     out = np.maximum(sd, rmse)
-    low = np.isin(quality, _REDUCED_QUALITY)
+    low = _label_is(quality, _REDUCED_QUALITY)
     if reduced is not None:
         low |= np.asarray(reduced, dtype=bool)
     if spread is not None:
@@ -496,14 +519,15 @@ def gap_labels(filled) -> np.ndarray:
     return np.where(filled, lab, -1)
 
 
-def _gap_ar1(z: np.ndarray, filled: np.ndarray, phi: float) -> np.ndarray:
-    """Unit-variance AR(1) along axis 1 over the filled positions, restarted at every gap.
+def _gap_ar1(z: np.ndarray, filled: np.ndarray, phi: float, *, overwrite: bool = False) -> np.ndarray:
+    """Unit-variance AR(1) along axis 0 over the filled positions, restarted at every gap.
 
-    ``z`` holds standard-normal innovations (draws × k, k = filled positions in order).
+    ``z`` holds standard-normal innovations (k × draws, k = filled positions in order).
     The recursion y_t = φ·y_{t−1} + √(1 − φ²)·z_t is run over the concatenated gaps with
     one :func:`scipy.signal.lfilter`; at a gap start the innovation has unit weight, and
     the state carried in from the previous gap, φ^(t − start + 1)·y_(start − 1), is
-    subtracted (exact, since the carried part decays geometrically).
+    subtracted (exact, since the carried part decays geometrically). ``overwrite`` lets the
+    weighting of the innovations reuse ``z`` (a caller's fresh draws) instead of a copy.
     """
     pos = np.flatnonzero(filled)
     k = pos.size
@@ -514,32 +538,89 @@ def _gap_ar1(z: np.ndarray, filled: np.ndarray, phi: float) -> np.ndarray:
     if phi <= 0.0:
         return z
     c = np.where(new_gap, 1.0, math.sqrt(max(1.0 - phi * phi, 0.0)))
-    y = lfilter([1.0], [1.0, -phi], z * c[None, :], axis=1)
+    if overwrite:
+        z *= c[:, None]
+    else:
+        z = z * c[:, None]
+    y = lfilter([1.0], [1.0, -phi], z, axis=0)
     starts = np.flatnonzero(new_gap)
     gid = np.cumsum(new_gap) - 1
-    offset = np.arange(k) - starts[gid] + 1  # steps since the value before the gap start
-    prev = starts[gid] - 1
-    carried = np.where(prev[None, :] >= 0, y[:, np.maximum(prev, 0)], 0.0)
+    # the first gap carries nothing in; from the second gap on, subtract the carried state
+    later = slice(starts[1], None) if starts.size > 1 else slice(k, None)
+    offset = (np.arange(k) - starts[gid] + 1)[later]  # steps since the value before the gap start
+    prev = (starts[gid] - 1)[later]
     with np.errstate(under="ignore"):
         decay = phi ** offset.astype(float)
-    return y - carried * decay[None, :]
+    carried = y[prev]  # a copy (fancy index): taken before y changes
+    carried *= decay[:, None]
+    y[later] -= carried
+    return y
 
 
-def standard_laplace(rng: np.random.Generator, shape, scale=None) -> np.ndarray:
+def _ar1_matrix(filled: np.ndarray, phi: float, *, max_entries: int | None = None):
+    """The sparse (k × k) matrix L of the restarted AR(1) of :func:`_gap_ar1`: y = L·z.
+
+    L[t, s] = c_s·φ^(t − s) for filled positions s ≤ t in the same gap (c_s = 1 at a gap
+    start, √(1 − φ²) elsewhere), zero otherwise. None when it would hold more than
+    ``max_entries`` entries (Σ over gaps of len·(len + 1)/2: long gaps make it large).
+    """
+    from scipy import sparse
+
+    pos = np.flatnonzero(filled)
+    k = pos.size
+    new_gap = np.ones(k, dtype=bool)
+    new_gap[1:] = pos[1:] != pos[:-1] + 1
+    starts = np.flatnonzero(new_gap)
+    gid = np.cumsum(new_gap) - 1
+    counts = np.arange(k) - starts[gid] + 1  # entries of row t: s = gap start … t
+    if max_entries is not None and int(counts.sum()) > max_entries:
+        return None
+    c = np.where(new_gap, 1.0, math.sqrt(max(1.0 - phi * phi, 0.0)))
+    rows = np.repeat(np.arange(k), counts)
+    lag = np.arange(rows.size) - np.repeat(np.cumsum(counts) - counts, counts)  # t − s
+    cols = rows - lag
+    with np.errstate(under="ignore"):
+        vals = c[cols] * phi ** lag.astype(float)
+    out = sparse.csr_matrix((vals, (rows, cols)), shape=(k, k))
+    out.eliminate_zeros()  # φ = 1: only the gap starts carry weight
+    return out
+
+
+#: the AR(1) of the filled values enters the sums through the weights (A = M·L, once per
+#: call) when L holds at most k × draws / 8 entries and A at most this many times the entries
+#: of M; else each block of draws is filtered (long gaps make L and A large)
+_AR1_THROUGH_WEIGHTS_MAX_GROWTH = 4
+
+
+#: elements per slab of :func:`standard_laplace`: each slab is finished while it is in cache
+_SLAB_ELEMENTS = 1 << 16
+#: shift that brings bit j of a 64-bit word to the sign position (bit 63)
+_TO_SIGN_BIT = (63 - np.arange(64)).astype(np.uint64)
+_SIGN_BIT = np.uint64(1 << 63)
+
+
+def standard_laplace(rng: np.random.Generator, shape, scale=None, *, out: np.ndarray | None = None) -> np.ndarray:
     """Laplace(0, 1) draws (variance 2) as exponential magnitudes with random signs, times ``scale``.
 
     If E ~ Exp(1) and S = ±1 with probability ½ each, independent of E, then S·E has the
-    density ½·exp(−|x|) (the Laplace distribution of scale 1). Drawn as one block of
-    :meth:`numpy.random.Generator.standard_exponential` (ziggurat) and one of random bytes
-    unpacked to one sign bit per value, set as the IEEE sign bit: about a third of the
-    time of :meth:`numpy.random.Generator.laplace`, which takes a logarithm per value.
+    density ½·exp(−|x|) (the Laplace distribution of scale 1). E is drawn by inversion of
+    its distribution function, E = −ln(1 − U) with U uniform on [0, 1) from
+    :meth:`numpy.random.Generator.random` (53-bit; 1 − U is exact and lies in (0, 1], so E
+    is finite, at most 36.7). The signs are the bits of random 64-bit words (value i takes
+    bit i mod 64 of word i div 64), set as the IEEE sign bit. Order of the draws: the sign
+    words of the whole block, then U in C order. The block is finished slab by slab of
+    rows while a slab is in cache (one uniform and a vectorised logarithm per value cost
+    less than the ziggurat exponential of
+    :meth:`numpy.random.Generator.standard_exponential` with a separate sign step).
 
     Parameters
     ----------
     rng : numpy.random.Generator
     shape : tuple of int
     scale : array_like, optional
-        Multiplier, broadcast against ``shape`` (e.g. one per column); default 1.
+        Multiplier, broadcast against ``shape`` (e.g. one per row); default 1.
+    out : numpy.ndarray, optional
+        C-contiguous float64 array of ``shape`` to fill (a caller's reused buffer).
 
     Returns
     -------
@@ -550,21 +631,61 @@ def standard_laplace(rng: np.random.Generator, shape, scale=None) -> np.ndarray:
     ----------
     Johnson, N. L., Kotz, S. and Balakrishnan, N. (1995). Continuous Univariate
     Distributions, vol. 2, 2nd ed., Wiley, ch. 24 (Laplace as a symmetrised exponential;
-    chapter from memory).
+    chapter from memory). Devroye, L. (1986). Non-Uniform Random Variate Generation,
+    Springer, ch. II.2 (the inversion method; from memory).
     """
-    out = rng.standard_exponential(shape)
+    shape = tuple(np.atleast_1d(shape).tolist()) if not isinstance(shape, tuple) else shape
+    if out is None:
+        out = np.empty(shape)
+    elif out.shape != shape or out.dtype != np.float64 or not out.flags.c_contiguous:
+        raise ValueError("out must be a C-contiguous float64 array of the given shape")
     n = out.size
     if n == 0:
-        return out
-    bits = np.unpackbits(np.frombuffer(rng.bytes((n + 7) // 8), dtype=np.uint8), count=n)
-    word = out.reshape(-1).view(np.uint64)  # a view: out is new and contiguous
-    step = 1 << 16  # slabs: the 64-bit sign words stay small (in cache, no fresh pages)
-    for s0 in range(0, n, step):
-        sign = bits[s0:s0 + step].astype(np.uint64)
-        sign <<= np.uint64(63)
-        word[s0:s0 + step] |= sign  # bit 1: the IEEE sign bit set (the magnitudes are ≥ 0)
-    if scale is not None:
-        out *= np.asarray(scale, dtype=float)
+        return out * np.asarray(scale, dtype=float) if scale is not None else out
+    words = np.frombuffer(rng.bytes(8 * ((n + 63) // 64)), dtype="<u8").astype(np.uint64, copy=False)
+    rows = out.shape[0] if out.ndim >= 1 else 1
+    flat = out.reshape(rows, -1)  # views: out is contiguous
+    cols = flat.shape[1]
+    word = flat.view(np.uint64)
+    mult = None if scale is None else np.broadcast_to(np.asarray(scale, dtype=float), out.shape).reshape(rows, -1)
+    # slabs of whole rows that start on a whole sign word (a multiple of 64 values)
+    unit = 64 // math.gcd(cols, 64)
+    step = max(unit, (_SLAB_ELEMENTS // cols) // unit * unit)
+    sign = np.empty((-(-min(step, rows) * cols // 64), 64), dtype=np.uint64)
+    for r0 in range(0, rows, step):
+        r1 = min(rows, r0 + step)
+        x = flat[r0:r1]
+        rng.random(out=x)
+        np.subtract(1.0, x, out=x)
+        np.log(x, out=x)  # −E: ≤ 0 (ln 1 = +0.0)
+        w0, w1 = r0 * cols // 64, -(-r1 * cols // 64)
+        s = sign[:w1 - w0]
+        np.left_shift(words[w0:w1, None], _TO_SIGN_BIT[None, :], out=s)
+        np.bitwise_and(s, _SIGN_BIT, out=s)
+        word[r0:r1] ^= s.reshape(-1)[:(r1 - r0) * cols].reshape(r1 - r0, cols)  # sign bit 1: −(−E) = E
+        if mult is not None:
+            x *= mult[r0:r1]
+    return out
+
+
+def _nested_source(groups: list[np.ndarray], n_groups: list[int]) -> list:
+    """For each grouping, the nearest earlier grouping whose groups each lie within one of
+    its groups (or in none), with the map of those groups to its own (−1: none); None
+    when there is no such grouping. Its sums are then sums of the earlier one's sums."""
+    out = []
+    for i, g in enumerate(groups):
+        found = None
+        for j in range(i - 1, -1, -1):
+            gj = groups[j]
+            inside = gj >= 0
+            if np.any(g[~inside] >= 0):
+                continue  # an interval in one of i's groups but in none of j's
+            mapping = np.full(n_groups[j], -1, dtype=np.int64)
+            mapping[gj[inside]] = g[inside]
+            if np.array_equal(mapping[gj[inside]], g[inside]):
+                found = (j, mapping)
+                break
+        out.append(found)
     return out
 
 
@@ -580,7 +701,8 @@ def simulate_errors(sd, measured, filled, *, draws: int, seed: int, phi: float,
         Measured values (independent Laplace errors) and filled values (Gaussian, AR(1)
         within each contiguous gap with coefficient ``phi`` per step; 1 = one draw per gap).
     draws, seed : int
-        Number of Monte Carlo draws and the seed of :func:`numpy.random.default_rng`.
+        Number of Monte Carlo draws and the seed of the random generator
+        (:class:`numpy.random.SFC64` under :class:`numpy.random.Generator`).
     phi : float
         AR(1) coefficient per interval within gaps, 0 ≤ phi ≤ 1.
     weights : array_like
@@ -600,10 +722,16 @@ def simulate_errors(sd, measured, filled, *, draws: int, seed: int, phi: float,
 
     Notes
     -----
-    Errors are drawn in blocks of draws × intervals (the Laplace errors with
-    :func:`standard_laplace`, in intervals × draws order); the group sums are one product of
-    the block with a sparse (interval × group) matrix holding the conversion weights. A
-    grouping equal to an earlier one gets copies of that one's sums.
+    Errors are drawn in blocks of intervals × draws (per block: the Laplace errors of the
+    measured intervals with :func:`standard_laplace`, then the Gaussian innovations of the
+    filled ones in the same order); their scales and the conversion weights are the
+    entries of the sparse matrices the blocks are multiplied with. A grouping whose groups are
+    unions of an earlier grouping's groups (months of days, the year of months: nested
+    groupings) is summed from that grouping's sums; the others ("base" groupings) are summed
+    from the draws, all of them and every row of ``weights`` in one product of the block
+    with a sparse (group and weight × interval) matrix. A grouping equal to an earlier one
+    gets copies of that one's sums. The sums of nested groupings are therefore sums of
+    partial sums: equal to the direct sums up to floating-point rounding.
     """
     from scipy import sparse
 
@@ -613,44 +741,86 @@ def simulate_errors(sd, measured, filled, *, draws: int, seed: int, phi: float,
     w_all = np.nan_to_num(np.asarray(weights, dtype=float), nan=0.0)
     single = w_all.ndim == 1
     w_all = np.atleast_2d(w_all)
+    n_w = w_all.shape[0]
     n = sd.size
-    rng = np.random.default_rng(int(seed))
+    # SFC64 (small fast chaotic generator): seeded like numpy.random.default_rng, faster draws
+    rng = np.random.Generator(np.random.SFC64(int(seed)))
     groups = [np.asarray(g, dtype=np.int64) for g in groups]
     n_groups = [int(g.max()) + 1 if g.size and g.max() >= 0 else 0 for g in groups]
     mpos = np.flatnonzero(measured)
     fpos = np.flatnonzero(filled)
 
-    def indicator(pos, g, k, w):
-        keep = g[pos] >= 0
-        rows = np.flatnonzero(keep)
-        return sparse.csr_matrix((w[pos][keep], (g[pos][keep], rows)), shape=(max(k, 1), pos.size))
+    source = _nested_source(groups, n_groups)
+    same_as = [None] * len(groups)
+    for i, src in enumerate(source):
+        if src is not None and n_groups[src[0]] == n_groups[i] and \
+                np.array_equal(src[1], np.arange(n_groups[i])):
+            same_as[i] = src[0]  # equal to an earlier grouping: copied at the end
+    base = [i for i, src in enumerate(source) if src is None and n_groups[i] > 0]
+    # rows of the base products: base grouping b, group g, weight w at offset[b] + g·n_w + w
+    offset, total_rows = {}, 0
+    for b in base:
+        offset[b] = total_rows
+        total_rows += n_groups[b] * n_w
 
-    # a grouping equal to an earlier one (the year and the whole record of a one-year run) is
-    # not summed again: its sums are copied at the end
-    same_as = [next((j for j in range(i) if n_groups[j] == n_groups[i] and np.array_equal(groups[j], g)), None)
-               for i, g in enumerate(groups)]
-    mats = [[(indicator(mpos, g, k, w), indicator(fpos, g, k, w)) if same_as[i] is None else None
-             for i, (g, k) in enumerate(zip(groups, n_groups))] for w in w_all]
-    out = [[(np.zeros((draws, k)), np.zeros((draws, k))) for k in n_groups] for _ in w_all]
-    # Laplace scale β = sd/√2 (variance 2β²)
-    m_scale = sd[mpos] / math.sqrt(2.0)
-    f_scale = sd[fpos]
+    def stacked(pos, scale):
+        """The sparse (base group and weight × interval) matrix of the positions ``pos``:
+        conversion weight times the error scale of each interval."""
+        rows, cols, vals = [], [], []
+        for b in base:
+            g = groups[b][pos]
+            keep = np.flatnonzero(g >= 0)
+            rows.append((offset[b] + g[keep][:, None] * n_w + np.arange(n_w)[None, :]).ravel())
+            cols.append(np.repeat(keep, n_w))
+            vals.append((w_all[:, pos[keep]] * scale[keep]).T.ravel())
+        cat = (lambda parts, dt: np.concatenate(parts) if parts else np.zeros(0, dt))
+        return sparse.csr_matrix((cat(vals, float), (cat(rows, np.int64), cat(cols, np.int64))),
+                                 shape=(max(total_rows, 1), pos.size))
+
+    # the draws are standard (Laplace of scale 1, unit-variance AR(1)); each interval's scale
+    # enters with its conversion weight: Laplace scale β = sd/√2 (variance 2β²), Gaussian sd
+    mat_m, mat_f = stacked(mpos, sd[mpos] / math.sqrt(2.0)), stacked(fpos, sd[fpos])
+    # the sums of the AR(1) errors M·y = M·(L·z) = (M·L)·z: one sparse product of the
+    # innovations, no filter per block of draws (exact up to rounding)
+    filter_blocks = phi > 0.0 and fpos.size > 0
+    if filter_blocks:
+        ar1 = _ar1_matrix(filled, phi, max_entries=fpos.size * draws // 8)
+        if ar1 is not None:
+            through = mat_f @ ar1
+            if through.nnz <= _AR1_THROUGH_WEIGHTS_MAX_GROWTH * max(mat_f.nnz, 1):
+                mat_f, filter_blocks = through, False
+    aggregate = {}
+    for i, src in enumerate(source):
+        if src is not None and same_as[i] is None and n_groups[i] > 0:
+            j, mapping = src
+            keep = np.flatnonzero(mapping >= 0)
+            aggregate[i] = sparse.csr_matrix((np.ones(keep.size), (mapping[keep], keep)),
+                                             shape=(n_groups[i], n_groups[j]))
+    out = [[(np.zeros((draws, k)), np.zeros((draws, k))) for k in n_groups] for _ in range(n_w)]
     step = max(1, int(chunk_elements // max(n, 1)))
+    em_buffer = np.empty(mpos.size * min(step, draws))  # reused by every block
     for d0 in range(0, draws, step):
         d1 = min(draws, d0 + step)
         nd = d1 - d0
-        # intervals × draws, the layout of the sparse products (the measured block, the large
-        # one, is drawn in it directly: no transposed copy)
-        em_t = standard_laplace(rng, (mpos.size, nd), m_scale[:, None])
-        ef = _gap_ar1(rng.standard_normal((nd, fpos.size)), filled, phi) * f_scale[None, :]
-        ef_t = np.ascontiguousarray(ef.T)
-        for per_w, mats_w in zip(out, mats):
-            for (om, of), pair, k in zip(per_w, mats_w, n_groups):
-                if k == 0 or pair is None:
-                    continue
-                mm, mf = pair
-                om[d0:d1] = (mm @ em_t).T[:, :k]
-                of[d0:d1] = (mf @ ef_t).T[:, :k]
+        # drawn in the layout of the sparse products, intervals × draws: no transposed copies
+        em_t = standard_laplace(rng, (mpos.size, nd), out=em_buffer[:mpos.size * nd].reshape(mpos.size, nd))
+        ef_t = rng.standard_normal((fpos.size, nd))  # innovations
+        if filter_blocks:
+            ef_t = _gap_ar1(ef_t, filled, phi, overwrite=True)
+        for part, (mat, block) in enumerate(((mat_m, em_t), (mat_f, ef_t))):
+            sums = {}  # grouping → (groups, n_w · draws) sums of this block
+            prod = mat @ block
+            for b in base:
+                sums[b] = prod[offset[b]:offset[b] + n_groups[b] * n_w].reshape(n_groups[b], n_w * nd)
+            for i in aggregate:  # in grouping order: a source is always summed before
+                j = source[i][0]
+                while same_as[j] is not None:  # a copy of an earlier grouping: sum that one's
+                    j = same_as[j]
+                sums[i] = aggregate[i] @ sums[j]
+            for i, s in sums.items():
+                s3 = s.reshape(n_groups[i], n_w, nd)
+                for w in range(n_w):
+                    out[w][i][part][d0:d1] = s3[:, w, :].T
     for per_w in out:
         for i, j in enumerate(same_as):
             if j is not None:
@@ -812,14 +982,14 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
     for name in ("rg", "ta", "vpd"):
         c = f"{name}_fill_method"
         if c in filling.columns:
-            drivers_filled |= np.isin(filling[c].to_numpy(dtype=object).astype(str), _FILLED_DRIVER_METHODS)
+            drivers_filled |= _label_is(filling[c], _FILLED_DRIVER_METHODS)
     half = int(round(duration(u["time_of_day_window"]) / pd.Timedelta(days=1)))
     tau = duration(u["fill_error_correlation_time"])
     phi = math.exp(-interval / tau) if tau > pd.Timedelta(0) else 0.0
     measured, filled_mask = {}, {}
     for flux in _FLUXES:
-        method = filling[f"{flux}_fill_method"].to_numpy(dtype=object).astype(str)
-        quality = filling[f"{flux}_fill_quality"].to_numpy(dtype=object).astype(str)
+        method = filling[f"{flux}_fill_method"].to_numpy(dtype=object)
+        quality = filling[f"{flux}_fill_quality"].to_numpy(dtype=object)
         x = _accepted(frame, flags, flux)
         x = np.full(n, np.nan) if x is None else x
         spread = time_of_day_spread(x, index, interval, half_window_days=half)
@@ -827,8 +997,8 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
         fe = fill_error_sd(filling[f"{flux}_fill_sd"].to_numpy(dtype=float), method, quality, cv,
                            reduced=drivers_filled, spread=spread)
         cols[f"{flux}_fill_error_sd"] = fe
-        measured[flux] = method == "measured"
-        filled_mask[flux] = (method != "measured") & (method != "not_filled") & \
+        measured[flux] = _label_is(method, ("measured",))
+        filled_mask[flux] = ~(measured[flux] | _label_is(method, ("not_filled",))) & \
             np.isfinite(filling[f"{flux}_filled"].to_numpy(dtype=float))
         cols[f"{flux}_total_sd"] = np.where(measured[flux], cols[f"{flux}_random_sd"],
                                             np.where(filled_mask[flux], fe, np.nan))
@@ -844,12 +1014,14 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
     mj_per_w = np.full(n, seconds / 1e6)
 
     local = index.tz_localize(None) if index.tz is not None else index
+    stamps = local.to_numpy()  # for the first and last interval of each period
     day = local.normalize()
     day_codes, day_values = pd.factorize(day, sort=True)
-    months = local.to_period("M")
-    month_codes, month_values = pd.factorize(months, sort=True)
-    years = local.year.to_numpy()
-    year_codes, year_values = pd.factorize(years, sort=True)
+    # months and years of the distinct days (each interval's are its day's)
+    month_of_day, month_values = pd.factorize(day_values.to_period("M"), sort=True)
+    month_codes = month_of_day[day_codes]
+    year_of_day, year_values = pd.factorize(day_values.year.to_numpy(), sort=True)
+    year_codes = year_of_day[day_codes]
     record = np.zeros(n, dtype=np.int64)
 
     le_f = filling["le_filled"].to_numpy(dtype=float)
@@ -908,8 +1080,12 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
     def mc_stats(part, which):
         em, ef = part[which]
         tot = em + ef
-        return tot.std(axis=0, ddof=1), np.quantile(tot, q_lo, axis=0), np.quantile(tot, q_hi, axis=0), \
-            em.std(axis=0, ddof=1), ef.std(axis=0, ddof=1)
+        lo, hi = np.quantile(tot, [q_lo, q_hi], axis=0)
+        return tot.std(axis=0, ddof=1), lo, hi, em.std(axis=0, ddof=1), ef.std(axis=0, ddof=1)
+
+    def mc_sd(part, which):
+        em, ef = part[which]
+        return (em + ef).std(axis=0, ddof=1)
 
     # ---- daily ------------------------------------------------------------------------------
     dt = table(day_codes, len(day_values))
@@ -933,10 +1109,14 @@ def assess_uncertainty(frame: pd.DataFrame, flags: pd.DataFrame, site, rules: di
             _, lo_c, hi_c, _, _ = mc_stats(mc["et_closed"], which)
         else:
             lo_c = hi_c = np.full(len(values), np.nan)
-        le_sd = mc_stats(mc["le_energy"], which)[0]
-        h_sd = mc_stats(mc["h_energy"], which)[0]
-        first = pd.Series(local).groupby(codes).min().to_numpy()
-        last = pd.Series(local).groupby(codes).max().to_numpy()
+        le_sd = mc_sd(mc["le_energy"], which)
+        h_sd = mc_sd(mc["h_energy"], which)
+        first = np.full(len(values), np.iinfo(np.int64).max)
+        np.minimum.at(first, codes, stamps.view(np.int64))
+        first = first.view(stamps.dtype)
+        last = np.full(len(values), np.iinfo(np.int64).min)
+        np.maximum.at(last, codes, stamps.view(np.int64))
+        last = last.view(stamps.dtype)
         for k, v in enumerate(values):
             totals.append({
                 "period_type": label,

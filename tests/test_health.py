@@ -268,3 +268,48 @@ def test_no_rg_uses_rn_for_the_clock():
     assert res.summary["health"]["radiation_for_clock"] == "rn"
     assert np.allclose(_weekly_offsets(res), 60.0, atol=1.0)  # imposed shift
     json.dumps(res.summary, allow_nan=False)
+
+
+def test_iso_week_matches_pandas_isocalendar():
+    """ISO week labels against pandas' isocalendar (the oracle), over three decades of days,
+    year ends with week 53 and week 1 in the old year included."""
+    from pipeline.health import _iso_week
+
+    days = pd.date_range("1999-12-20", "2031-01-10", freq="D")
+    iso = days.isocalendar()
+    expected = [f"{y}-W{w:02d}" for y, w in zip(iso["year"], iso["week"])]
+    assert list(_iso_week(days)) == expected
+    aware = pd.date_range("2020-12-31", periods=3, freq="D", tz=TZ)
+    assert list(_iso_week(aware)) == ["2020-W53", "2020-W53", "2020-W53"]  # 2021-01-01..03: week 53 of 2020
+    assert _iso_week(pd.DatetimeIndex([])).shape == (0,)
+
+
+def test_weekly_helpers_match_their_one_week_forms():
+    """The all-weeks-at-once flat-line runs, medians and clock offsets equal the one-week
+    (or one-day) computations: longest_flat_run, numpy.median, offset_from_correlation
+    (regression against the scalar forms)."""
+    from pipeline.health import _offsets_from_correlation, _weekly_longest_flat_run, _weekly_median
+
+    rng = np.random.default_rng(4)
+    n, n_weeks = 2000, 6
+    week = np.sort(rng.integers(0, n_weeks, n))
+    x = np.round(rng.normal(size=n), 1)  # repeats
+    x[rng.random(n) < 0.1] = np.nan
+    x[300:340] = 2.5  # a long flat line
+    runs = _weekly_longest_flat_run(x, week, n_weeks)
+    assert list(runs) == [longest_flat_run(x[week == k]) for k in range(n_weeks)]
+    use = np.isfinite(x) & (rng.random(n) < 0.5)
+    med = _weekly_median(x, use, week, n_weeks, 4)
+    for k in range(n_weeks):
+        vals = x[use & (week == k)]
+        assert med[k] == (float(np.median(vals)) if vals.size >= 4 else None)
+    lags = np.arange(-6, 7) * 5.0
+    corr = rng.uniform(0.5, 1.0, (8, lags.size))
+    corr[1, 0] = 2.0  # maximum at the edge
+    corr[2] = np.nan  # all missing
+    corr[3, 5] = 1.5
+    corr[3, 6] = np.nan  # a missing neighbour of the maximum
+    offsets, peaks = _offsets_from_correlation(lags, corr)
+    for j in range(corr.shape[0]):
+        off, peak = offset_from_correlation(lags, corr[j])
+        np.testing.assert_array_equal([offsets[j], peaks[j]], [off, peak])

@@ -231,13 +231,13 @@ def test_gap_labels_and_ar1_restart():
     """Gaps are labelled by contiguous runs; the AR(1) restarts at every gap (hand case)."""
     filled = np.array([False, True, True, False, True, True, True])
     np.testing.assert_array_equal(gap_labels(filled), [-1, 0, 0, -1, 1, 1, 1])
-    z = np.array([[1.0, 2.0, 3.0, 4.0, 5.0]])  # innovations of the 5 filled positions
+    z = np.array([[1.0, 2.0, 3.0, 4.0, 5.0]])  # innovations of the 5 filled positions (one draw)
     phi = 0.5
     c = math.sqrt(1 - phi ** 2)
-    y = _gap_ar1(z, filled, phi)
+    y = _gap_ar1(z.T, filled, phi).T
     expected = [1.0, phi * 1.0 + c * 2.0, 3.0, phi * 3.0 + c * 4.0, phi * (phi * 3.0 + c * 4.0) + c * 5.0]
     np.testing.assert_allclose(y[0], expected)  # derived by hand
-    np.testing.assert_allclose(_gap_ar1(z, filled, 1.0)[0], [1.0, 1.0, 3.0, 3.0, 3.0])  # one draw per gap
+    np.testing.assert_allclose(_gap_ar1(z.T, filled, 1.0)[:, 0], [1.0, 1.0, 3.0, 3.0, 3.0])  # one draw per gap
 
 
 def test_independent_measured_errors_sum_in_quadrature():
@@ -414,3 +414,86 @@ def test_simulate_errors_repeated_grouping_gives_the_same_sums():
         assert np.array_equal(twice[2][part], twice[1][part])
         assert twice[2][part] is not twice[1][part]
         assert np.array_equal(twice[0][part], alone[0][part])
+
+
+def test_ar1_through_the_weights_equals_filtering_the_draws(monkeypatch):
+    """L·z with the AR(1) matrix equals the restarted filter of the draws (y = L z, derived),
+    and the error sums through A = M·L equal those of the filtered draws: the same draws
+    either way, equal up to rounding (regression)."""
+    from pipeline import uncertainty
+
+    filled = np.array([True, True, False, True, True, True, False, False, True])
+    z = np.random.default_rng(3).standard_normal((int(filled.sum()), 4))
+    for phi in (0.0, 0.3, 0.9, 1.0):
+        np.testing.assert_allclose(uncertainty._ar1_matrix(filled, phi) @ z, _gap_ar1(z, filled, phi),
+                                   rtol=1e-13, atol=1e-15)
+    assert uncertainty._ar1_matrix(filled, 0.5, max_entries=5) is None  # 3 + 6 + 1 entries
+    rng = np.random.default_rng(12)
+    n = 192
+    sd = rng.uniform(1.0, 5.0, n)
+    filled = rng.random(n) < 0.4
+    filled[40:130] = True  # one long gap across days
+    day = np.arange(n) // 48
+    kw = dict(draws=60, seed=9, phi=0.95, weights=np.vstack([np.ones(n), rng.uniform(0.5, 2.0, n)]),
+              groups=[day, np.zeros(n, np.int64)])
+    through = simulate_errors(sd, ~filled, filled, **kw)
+    monkeypatch.setattr(uncertainty, "_AR1_THROUGH_WEIGHTS_MAX_GROWTH", -1)  # force the filter
+    filtered = simulate_errors(sd, ~filled, filled, **kw)
+    for w in range(2):
+        for g in range(2):
+            np.testing.assert_array_equal(through[w][g][0], filtered[w][g][0])  # measured: untouched
+            np.testing.assert_allclose(through[w][g][1], filtered[w][g][1], rtol=1e-10, atol=1e-12)
+
+
+def test_nested_groupings_are_sums_of_the_finer_sums():
+    """Groupings whose groups are unions of an earlier grouping's (pairs of days, alternate
+    days of days; the record) are summed from those sums, one that splits them (half days)
+    from the draws; the draws do not depend on the groupings, so every grouping's sums equal
+    its sums alone up to rounding (regression)."""
+    rng = np.random.default_rng(21)
+    n = 48 * 6
+    sd = rng.uniform(1.0, 5.0, n)
+    measured = rng.random(n) < 0.7
+    day = np.arange(n) // 48
+    pair_of_days = day // 2
+    alternate = day % 2
+    half_day = np.arange(n) // 24
+    one = np.zeros(n, np.int64)
+    groups = [day, pair_of_days, alternate, half_day, one]
+    kw = dict(draws=40, seed=2, phi=0.8, weights=rng.uniform(0.5, 2.0, n))
+    together = simulate_errors(sd, measured, ~measured, groups=groups, **kw)
+    for i, g in enumerate(groups):
+        alone = simulate_errors(sd, measured, ~measured, groups=[g], **kw)[0]
+        for part in range(2):
+            np.testing.assert_allclose(together[i][part], alone[part], rtol=1e-12, atol=1e-12)
+    # nesting found: pairs and alternate days from days, none for half days, the record from
+    # the nearest earlier grouping (half days)
+    from pipeline.uncertainty import _nested_source
+
+    src = _nested_source(groups, [6, 3, 2, 12, 1])
+    assert src[0] is None and src[1][0] == 0 and src[2][0] == 0 and src[3] is None and src[4][0] == 3
+
+
+def test_time_of_day_spread_of_a_record_shorter_than_the_window():
+    """A 3-day record with a ±7-day window: every day's spread uses all 3 days (the days
+    that exist); hand case against numpy's sample sd of the 9 values (3 clock times × 3 days)."""
+    index = pd.date_range("2024-01-01", periods=72, freq="60min")
+    x = np.tile(np.arange(24.0), 3) + np.repeat([0.0, 3.0, 6.0], 24)
+    sd = time_of_day_spread(x, index, pd.Timedelta("60min"), half_window_days=7)
+    expected = np.std([x[i] for i in (23, 0, 1, 47, 24, 25, 71, 48, 49)], ddof=1)  # 00:00 ± 1 h, wrapping
+    assert sd[0] == pytest.approx(expected) and sd[24] == pytest.approx(expected)
+
+
+def test_standard_laplace_fills_a_buffer_and_stays_finite():
+    """``out`` is filled in place; −ln(1 − U) with U < 1 on a 2^-53 grid is at most
+    53·ln 2 = 36.74 (derived)."""
+    from pipeline.uncertainty import standard_laplace
+
+    buf = np.empty((7, 33))
+    got = standard_laplace(np.random.default_rng(5), (7, 33), out=buf)
+    assert got is buf
+    np.testing.assert_array_equal(buf, standard_laplace(np.random.default_rng(5), (7, 33)))
+    x = standard_laplace(np.random.default_rng(6), (1000, 100))
+    assert np.isfinite(x).all() and np.abs(x).max() <= 53 * math.log(2.0)
+    with pytest.raises(ValueError):
+        standard_laplace(np.random.default_rng(5), (7, 33), out=np.empty((33, 7)))
