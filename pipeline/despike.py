@@ -24,7 +24,10 @@ candidates; we flag only the outlier itself. A candidate is a spike when, in add
 3. its deviation |d - Md| is not smaller than that of either neighbour;
 4. except for two spikes of the same sign two intervals apart: the ordinary value between
    them then has the largest |d|, passes 1-3 and has both neighbours passing 1-2 with the
-   opposite sign; that pattern flags the two outer values, not the middle one.
+   opposite sign, and each neighbour's two steps are of similar size (the smaller at least
+   half the larger; the neighbour of a single spike has one ordinary step, which noise can
+   lift over the bound of 2 but rarely to half the spike); that pattern flags the two outer
+   values, not the middle one.
 
 For an isolated spike these select exactly the spike (tests/test_despike.py). The
 additional conditions are ours; they only remove candidates, never add any. Two spikes in
@@ -56,6 +59,9 @@ MAD_TO_SIGMA = 0.6745
 
 #: fraction of the spike threshold each single step next to a spike must reach (ours)
 _STEP_FRACTION = 0.25
+
+#: smaller step / larger step of a value that counts as a spike of its own in note 4 (ours)
+_BALANCED_STEPS = 0.5
 
 
 def double_differences(values) -> np.ndarray:
@@ -189,6 +195,15 @@ def despike(values, times: pd.DatetimeIndex, is_day, *, z: float = 4.0,
     strong_right = np.concatenate((strong[1:], [False]))
     sign_left = np.concatenate(([0.0], sign[:-1]))
     sign_right = np.concatenate((sign[1:], [0.0]))
-    between = strong & strong_left & strong_right & (sign_left == -sign) & (sign_right == -sign)
+    # ... and the two outer values are spikes of their own: both their steps of about the
+    # same size (a single spike's neighbour has one ordinary step, which noise can make
+    # 'tall' but rarely half the spike's step)
+    big = np.fmax(np.abs(step_in), np.abs(step_out))
+    with np.errstate(invalid="ignore"):
+        balanced = np.minimum(np.abs(step_in), np.abs(step_out)) >= _BALANCED_STEPS * big
+    balanced_left = np.concatenate(([False], balanced[:-1]))
+    balanced_right = np.concatenate((balanced[1:], [False]))
+    between = (strong & strong_left & strong_right & (sign_left == -sign) & (sign_right == -sign)
+               & balanced_left & balanced_right)
     outer = np.concatenate((between[1:], [False])) | np.concatenate(([False], between[:-1]))
     return strong & ~between & (dominant | outer)

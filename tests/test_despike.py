@@ -147,7 +147,7 @@ def test_blocks_are_anchored_at_the_first_interval():
     assert (block_numbers(times[:48 * 20], pd.Timedelta(days=13)) == blocks[:48 * 20]).all()
 
 
-from hypothesis import given, settings  # noqa: E402
+from hypothesis import example, given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
 
 _TIMES, _BASE, _IS_DAY = invented_flux(days=13, noise=5.0, seed=31)
@@ -156,6 +156,9 @@ _TIMES, _BASE, _IS_DAY = invented_flux(days=13, noise=5.0, seed=31)
 @settings(max_examples=40, deadline=None)
 @given(position=st.integers(min_value=48, max_value=_BASE.size - 48),
        height=st.floats(min_value=80.0, max_value=800.0), sign=st.sampled_from([-1.0, 1.0]))
+# found by hypothesis: both neighbours of a low spike had noisy steps over the bound of note 2,
+# so the spike looked like the ordinary value between two spikes (note 4)
+@example(position=263, height=80.0, sign=-1.0)
 def test_property_any_isolated_spike_flags_exactly_itself(position, height, sign):
     """Property: one outlier 16-160 noise SDs tall, anywhere, day or night, flags exactly one value."""
     x = _BASE.copy()
