@@ -204,8 +204,12 @@ def bench_sizes(sizes, data_root: Path, work: Path, *, report: bool, repeat: int
     for n in sizes:
         data = datasets[n]
         print(f"timing {n} site-year(s) …", file=sys.stderr)
-        floors = [io_floor(data.files) for _ in range(repeat)]
-        runs = [time_site(data, work / f"run-{n}y", report=report) for _ in range(repeat)]
+        # floor and job alternate, so that a change of the machine's speed during the run
+        # (other load on the shared cores) reaches both alike
+        floors, runs = [], []
+        for _ in range(repeat):
+            floors.append(io_floor(data.files))
+            runs.append(time_site(data, work / f"run-{n}y", report=report))
         best = min(runs, key=lambda t: t["total"])
         out_dir = work / f"cli-{n}y"
         shutil.rmtree(out_dir, ignore_errors=True)

@@ -96,14 +96,16 @@ def solve_soft_l1(residual_and_jacobian: Callable, x0, valid, *, lower, upper, f
     damping = np.full(nw, 1e-3)
     active = np.any(valid, axis=1) & np.any(free, axis=1)
     converged = ~active & np.all(np.isfinite(theta), axis=1)
-    r, _ = residual_and_jacobian(theta, np.arange(nw), False)
-    cost = soft_l1_cost(r, valid, f_scale)
+    # residuals and derivatives at the current parameters of every window; a trial point is
+    # evaluated with its derivatives, which the next iteration reuses where it is accepted
+    r_now, jac_now = residual_and_jacobian(theta, np.arange(nw), True)
+    cost = soft_l1_cost(r_now, valid, f_scale)
     for _ in range(max_iterations):
         if not active.any():
             break
         rows = np.flatnonzero(active)
         th = theta[rows]
-        r, jac = residual_and_jacobian(th, rows, True)
+        r, jac = r_now[rows], jac_now[rows]
         ok = valid[rows]
         weight = np.where(ok, 1.0 / np.sqrt(1.0 + (np.where(ok, r, 0.0) / f_scale) ** 2), 0.0)
         wr = weight * np.where(ok, r, 0.0)
@@ -122,13 +124,16 @@ def solve_soft_l1(residual_and_jacobian: Callable, x0, valid, *, lower, upper, f
         except np.linalg.LinAlgError:
             step = -np.stack([np.linalg.lstsq(a, b, rcond=None)[0] for a, b in zip(lhs, grad)])
         trial = np.clip(th + step, lower, upper)
-        r_trial, _ = residual_and_jacobian(trial, rows, False)
+        r_trial, jac_trial = residual_and_jacobian(trial, rows, True)
         cost_trial = soft_l1_cost(r_trial, ok, f_scale)
         better = np.isfinite(cost_trial) & (cost_trial <= cost[rows])
         moved = np.abs(trial - th)
         small_step = np.all(moved <= xtol * (1.0 + np.abs(th)), axis=1)
         small_gain = better & (cost[rows] - cost_trial <= ftol * np.maximum(cost[rows], 1e-300))
         theta[rows] = np.where(better[:, None], trial, th)
+        taken = rows[better]
+        r_now[taken] = r_trial[better]
+        jac_now[taken] = jac_trial[better]
         cost[rows] = np.where(better, cost_trial, cost[rows])
         damping[rows] = np.where(better, np.maximum(damping[rows] / 3.0, 1e-12), damping[rows] * 4.0)
         done = (better & (small_gain | small_step)) | (~better & small_step) | (damping[rows] > 1e12)

@@ -483,10 +483,10 @@ def _check_readable(site_dir: Path) -> None:
 
 def _fault_sweep(demo, baseline, clean3, tmp_path, monkeypatch, targets, which):
     manifest = max(i for i, t in enumerate(targets) if t.endswith("manifest.json"))
-    staged = [i for i, t in enumerate(targets) if "/.staging-" in t]
     renames = [i for i, t in enumerate(targets) if i > manifest]
-    assert staged and renames and max(staged) < manifest  # outputs complete before the commit
-    points = {"first staged output": staged[0], "store data file": manifest - 1, "store manifest": manifest,
+    assert renames and all(t.startswith(str(Path(targets[renames[0]]).parent)) for t in
+                           (targets[i] for i in renames))  # outputs renamed after the commit
+    points = {"store data file": manifest - 1, "store manifest": manifest,
               "first output rename": renames[0], "last output rename": renames[-1]}
     ks = range(len(targets)) if which == "all" else [points[which]]
     real = os.replace
@@ -515,10 +515,36 @@ def _fault_sweep(demo, baseline, clean3, tmp_path, monkeypatch, targets, which):
             assert_same_outputs(site_dir, clean3 / SITE)
 
 
-@pytest.mark.parametrize("which", ["first staged output", "store manifest", "first output rename"])
+@pytest.mark.parametrize("which", ["store manifest", "first output rename"])
 def test_failure_between_write_and_rename(which, demo, baseline, clean3, tmp_path, monkeypatch, replace_targets):
     """os.replace fails (a full disk, simulated in-process) at one point of the run's writes."""
     _fault_sweep(demo, baseline, clean3, tmp_path, monkeypatch, replace_targets, which)
+
+
+@pytest.mark.parametrize("failing_write", [1, 4])
+def test_failure_while_staging_outputs(failing_write, demo, baseline, tmp_path, monkeypatch):
+    """Writing a staged output fails (the first, or a later one): store and outputs untouched."""
+    from towerflow.atomic import StagedFolder
+
+    out = tmp_path / "out"
+    shutil.copytree(baseline, out)
+    before = tree(out)
+    real = StagedFolder.write_bytes
+    calls = []
+
+    def failing(self, name, data):
+        calls.append(name)
+        if len(calls) == failing_write:
+            raise OSError(28, "No space left on device (simulated)")
+        return real(self, name, data)
+    monkeypatch.setattr(StagedFolder, "write_bytes", failing)
+    with pytest.raises(OSError, match="simulated"):
+        run_site(demo["toml"], [demo["weeks"][2]], out, report=False)
+    monkeypatch.setattr(StagedFolder, "write_bytes", real)
+    site_dir = out / SITE
+    _check_readable(site_dir)
+    assert not list(site_dir.glob(".staging-*")) and not list(site_dir.rglob("*.tmp"))
+    assert tree(out) == before
 
 
 @pytest.mark.slow

@@ -38,10 +38,10 @@ from pipeline.process import STAGES, SiteProducts
 from pipeline.rules import load_rules
 
 from . import __version__
-from .atomic import StagedFolder, atomic_write_bytes, atomic_write_text
+from .atomic import StagedFolder, atomic_write_bytes
 from .store import SiteStore
 
-__all__ = ["run_site", "SiteOutcome", "site_output_dir", "write_parquet", "rules_to_toml"]
+__all__ = ["run_site", "SiteOutcome", "site_output_dir", "write_parquet", "parquet_with_metadata", "rules_to_toml"]
 
 #: columns compared for the change log
 _CHANGE_COLUMNS = ("le", "h", "rn", "g", "rg", "ta", "vpd", "rh", "ustar", "le_flag", "h_flag",
@@ -75,8 +75,8 @@ def rules_to_toml(rules: dict, *, header: str = "") -> str:
     return "\n".join(lines) + ("\n" if lines else "") + tomli_w.dumps(rules)
 
 
-def write_parquet(path: Path, frame: pd.DataFrame, *, file_metadata: dict, extra: dict | None = None) -> None:
-    """Write ``frame`` atomically with per-column metadata (unit, long_name, standard_name, flags)."""
+def parquet_with_metadata(frame: pd.DataFrame, *, file_metadata: dict, extra: dict | None = None) -> bytes:
+    """``frame`` as parquet bytes with per-column metadata (unit, long_name, standard_name, flags)."""
     table = pa.Table.from_pandas(frame, preserve_index=False, nthreads=1)  # see atomic.parquet_bytes
     fields = []
     for f in table.schema:
@@ -93,7 +93,12 @@ def write_parquet(path: Path, frame: pd.DataFrame, *, file_metadata: dict, extra
     # encoding anyway, after the work; the values read back are the same
     dictionary = [f.name for f in table.schema if not pa.types.is_floating(f.type)]
     pq.write_table(table, sink, compression="zstd", use_dictionary=dictionary)
-    atomic_write_bytes(path, sink.getvalue().to_pybytes())
+    return sink.getvalue().to_pybytes()
+
+
+def write_parquet(path: Path, frame: pd.DataFrame, *, file_metadata: dict, extra: dict | None = None) -> None:
+    """Write ``frame`` atomically with per-column metadata (:func:`parquet_with_metadata`)."""
+    atomic_write_bytes(path, parquet_with_metadata(frame, file_metadata=file_metadata, extra=extra))
 
 
 def _periods(index: pd.DatetimeIndex, changed: np.ndarray, gap: pd.Timedelta) -> list[list[str]]:
@@ -418,7 +423,7 @@ def finish_site(state, pending, *, timings: dict | None = None) -> Path:
         _remove_stale_staging(site_dir)
         with StagedFolder(site_dir) as stage:
             _write_outputs(site_dir, state.cfg, products, state.rules, products.warnings, pending.report,
-                           dest=stage.path)
+                           stage=stage)
             timings["write"] = time.perf_counter() - t0
             t0 = time.perf_counter()
             pending.commit()
@@ -490,12 +495,10 @@ def run_site(config_path: str | os.PathLike, files, out_dir: str | os.PathLike, 
 
 
 def _write_outputs(site_dir: Path, cfg: SiteConfig, products: SiteProducts, rules: dict,
-                   warnings: list[str], store_report: dict, *, dest=None) -> None:
-    """Write the outputs; ``dest(name)`` gives each file's path (default ``site_dir / name``).
-
-    The change log compares with the previous ``site_dir / intervals.parquet``.
+                   warnings: list[str], store_report: dict, *, stage: StagedFolder) -> None:
+    """Write the outputs into ``stage`` (whose commit makes them durable and moves them into
+    ``site_dir``). The change log compares with the previous ``site_dir / intervals.parquet``.
     """
-    dest = dest or (lambda name: site_dir / name)
     rules_toml = rules_to_toml(rules, header=(
         f"Effective rule set of the last run for site {cfg.site.id}.\n"
         "Pass this file as the site's [qc] rules to repeat the run exactly."))
@@ -527,24 +530,24 @@ def _write_outputs(site_dir: Path, cfg: SiteConfig, products: SiteProducts, rule
     from pipeline.uncertainty import COLUMN_METADATA as uncertainty_metadata
 
     small_meta = {k: v for k, v in file_meta.items() if k != "effective_rules"}
-    write_parquet(dest("intervals.parquet"), products.intervals, file_metadata=file_meta,
-                  extra=uncertainty_metadata)
-    write_parquet(dest("daily.parquet"), products.daily, file_metadata=small_meta,
-                  extra=uncertainty_metadata)
+    stage.write_bytes("intervals.parquet", parquet_with_metadata(
+        products.intervals, file_metadata=file_meta, extra=uncertainty_metadata))
+    stage.write_bytes("daily.parquet", parquet_with_metadata(
+        products.daily, file_metadata=small_meta, extra=uncertainty_metadata))
     totals = pd.DataFrame(products.summary.get("totals") or [])
     if len(totals):
-        write_parquet(dest("totals.parquet"), totals, file_metadata=small_meta,
-                      extra=uncertainty_metadata)
-    atomic_write_text(dest("effective_rules.toml"), rules_toml)
-    atomic_write_text(dest("changes.json"), json.dumps(json_ready(log), indent=1))
-    atomic_write_text(dest("changes.md"), _changes_markdown(cfg.site.id, log))
+        stage.write_bytes("totals.parquet", parquet_with_metadata(
+            totals, file_metadata=small_meta, extra=uncertainty_metadata))
+    stage.write_text("effective_rules.toml", rules_toml)
+    stage.write_text("changes.json", json.dumps(json_ready(log), indent=1))
+    stage.write_text("changes.md", _changes_markdown(cfg.site.id, log))
     summary = dict(products.summary)
     summary["warnings"] = list(dict.fromkeys(warnings))
     summary["run_id"] = run_id
     summary["processed_at"] = processed_at
     summary["rules_sha256"] = rules_sha
     summary["store"] = store_report
-    atomic_write_text(dest("summary.json"), json.dumps(json_ready(summary), indent=1))
+    stage.write_text("summary.json", json.dumps(json_ready(summary), indent=1))
 
 
 def stage_names(report: bool = True) -> tuple[str, ...]:
