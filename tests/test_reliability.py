@@ -481,6 +481,26 @@ def _check_readable(site_dir: Path) -> None:
             path.read_text()
 
 
+def _run_with_failure(monkeypatch, owner, attr, nth, demo, out) -> None:
+    """Add week 3 to ``out`` with ``owner.attr`` failing (a full disk, simulated in-process)
+    at its ``nth`` call; what is left must be readable, with no staging or temporary files."""
+    real = getattr(owner, attr)
+    calls = []
+
+    def failing(*a, **kw):
+        calls.append(a)
+        if len(calls) == nth:
+            raise OSError(28, "No space left on device (simulated)")
+        return real(*a, **kw)
+    monkeypatch.setattr(owner, attr, failing)
+    with pytest.raises(OSError, match="simulated"):
+        run_site(demo["toml"], [demo["weeks"][2]], out, report=False)
+    monkeypatch.setattr(owner, attr, real)
+    site_dir = out / SITE
+    _check_readable(site_dir)
+    assert not list(site_dir.glob(".staging-*")) and not list(site_dir.rglob("*.tmp"))
+
+
 def _fault_sweep(demo, baseline, clean3, tmp_path, monkeypatch, targets, which):
     manifest = max(i for i, t in enumerate(targets) if t.endswith("manifest.json"))
     renames = [i for i, t in enumerate(targets) if i > manifest]
@@ -489,25 +509,12 @@ def _fault_sweep(demo, baseline, clean3, tmp_path, monkeypatch, targets, which):
     points = {"store data file": manifest - 1, "store manifest": manifest,
               "first output rename": renames[0], "last output rename": renames[-1]}
     ks = range(len(targets)) if which == "all" else [points[which]]
-    real = os.replace
     for k in ks:
         out = tmp_path / f"k{k}"
         shutil.copytree(baseline, out)
         before = tree(out)
-        calls = []
-
-        def failing(src, dst, *a, **kw):
-            calls.append(dst)
-            if len(calls) == k + 1:
-                raise OSError(28, "No space left on device (simulated)")
-            return real(src, dst, *a, **kw)
-        monkeypatch.setattr(os, "replace", failing)
-        with pytest.raises(OSError, match="simulated"):
-            run_site(demo["toml"], [demo["weeks"][2]], out, report=False)
-        monkeypatch.setattr(os, "replace", real)
+        _run_with_failure(monkeypatch, os, "replace", k + 1, demo, out)
         site_dir = out / SITE
-        _check_readable(site_dir)
-        assert not list(site_dir.glob(".staging-*")) and not list(site_dir.rglob("*.tmp"))
         if k <= manifest:  # nothing renamed yet: everything exactly as it was
             assert tree(out) == before, k
         else:  # the store is committed; each output is either the old or the new complete file
@@ -529,21 +536,7 @@ def test_failure_while_staging_outputs(failing_write, demo, baseline, tmp_path, 
     out = tmp_path / "out"
     shutil.copytree(baseline, out)
     before = tree(out)
-    real = StagedFolder.write_bytes
-    calls = []
-
-    def failing(self, name, data):
-        calls.append(name)
-        if len(calls) == failing_write:
-            raise OSError(28, "No space left on device (simulated)")
-        return real(self, name, data)
-    monkeypatch.setattr(StagedFolder, "write_bytes", failing)
-    with pytest.raises(OSError, match="simulated"):
-        run_site(demo["toml"], [demo["weeks"][2]], out, report=False)
-    monkeypatch.setattr(StagedFolder, "write_bytes", real)
-    site_dir = out / SITE
-    _check_readable(site_dir)
-    assert not list(site_dir.glob(".staging-*")) and not list(site_dir.rglob("*.tmp"))
+    _run_with_failure(monkeypatch, StagedFolder, "write_bytes", failing_write, demo, out)
     assert tree(out) == before
 
 

@@ -301,6 +301,21 @@ class _Pieces:
         return out
 
 
+def _refuse_clock_reset(compared, differ, interval, store, path) -> int:
+    """Refuse a file whose overlap with the store mostly differs (a logger clock reset that
+    restamped old data); returns the number of differing values."""
+    n_compared = int(compared.sum())
+    n_differ = int(differ.sum())
+    rows_compared = int(compared.any(axis=1).sum())
+    if (n_compared and rows_compared * interval >= store.clock_reset_min_overlap
+            and n_differ / n_compared >= store.clock_reset_fraction):
+        raise StoreError(
+            f"{n_differ} of {n_compared} values overlapping the store over "
+            f"{_span(rows_compared * interval)} differ from the stored ones: this looks like a logger "
+            f"clock reset that restamped old data; file refused, nothing written", file=path)
+    return n_differ
+
+
 class _FloatStream:
     """A stream's merge, file by file, on numpy arrays while every source column is float64.
 
@@ -432,15 +447,7 @@ class _FloatStream:
         r_added = values[np.ix_(r_pos, [cols.index(c) for c in new_cols])]
         extra = (~np.isnan(r_added)).any(axis=1)  # overlap rows with values in columns new to the stream
 
-        n_compared = int(compared.sum())
-        n_differ = int(differ.sum())
-        rows_compared = int(compared.any(axis=1).sum())
-        if (n_compared and rows_compared * interval >= store.clock_reset_min_overlap
-                and n_differ / n_compared >= store.clock_reset_fraction):
-            raise StoreError(
-                f"{n_differ} of {n_compared} values overlapping the store over "
-                f"{_span(rows_compared * interval)} differ from the stored ones: this looks like a logger "
-                f"clock reset that restamped old data; file refused, nothing written", file=ing.path)
+        n_differ = _refuse_clock_reset(compared, differ, interval, store, ing.path)
 
         report.new_columns = new_cols
         report.new_rows = int(n - n_ov)
@@ -972,15 +979,7 @@ class SiteStore:
         for col in new_cols:
             extra |= ~pd.isna(raw[col].to_numpy()[r_pos])
 
-        n_compared = int(compared.sum())
-        n_differ = int(differ.sum())
-        rows_compared = int(compared.any(axis=1).sum())
-        if (n_compared and rows_compared * interval >= self.clock_reset_min_overlap
-                and n_differ / n_compared >= self.clock_reset_fraction):
-            raise StoreError(
-                f"{n_differ} of {n_compared} values overlapping the store over "
-                f"{_span(rows_compared * interval)} differ from the stored ones: this looks like a logger "
-                f"clock reset that restamped old data; file refused, nothing written", file=ing.path)
+        n_differ = _refuse_clock_reset(compared, differ, interval, self, ing.path)
 
         report.new_columns = new_cols
         report.new_rows = int(len(raw) - n_ov)
