@@ -74,6 +74,7 @@ _GS_RANGE = (1e-4, 0.1)
 _MIN_RG_FIT = 50.0  # W m-2, common practice: daytime with a meaningful light response
 _MIN_LE_FIT = 5.0  # W m-2, common practice
 _MIN_A_FIT = 20.0  # W m-2, common practice
+_START_K_RANGE = (20.0, 2000.0)  # W m-2, where window fits start k (ours; well inside the bounds)
 
 
 def aerodynamic_conductance_for_filling(wind, ustar):
@@ -259,6 +260,10 @@ def _window_fits(first, last, ok_pos, min_samples, *, gs_obs, rg, vpd, swc, gues
     if swc is not None:
         sw = np.where(valid, swc[idx], 0.0)
         d = sw - (sw.sum(axis=1) / count[rows])[:, None]
+    if guess is not None:  # a start with k on or near a bound slows the projected steps: k
+        # starts within 20-2000 W m-2 (the rest of the site-wide fit as it is)
+        guess = np.asarray(guess, dtype=float).copy()
+        guess[1] = np.clip(guess[1], np.log(_START_K_RANGE[0]), np.log(_START_K_RANGE[1]))
     theta, converged = fit_conductance_responses(
         gs_obs[idx], rg[idx], vpd[idx], d, valid, x0_guess=guess,
         use_swc=np.full(rows.size, swc is not None))

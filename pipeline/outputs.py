@@ -148,8 +148,7 @@ def intervals_table(frame_before_qc: pd.DataFrame, flags: pd.DataFrame, *parts: 
         The site interval (for ``timestamp_end``).
     """
     index = frame_before_qc.index
-    out = pd.DataFrame({"timestamp_start": index, "timestamp_end": index + interval})
-    cols: dict[str, np.ndarray] = {}
+    cols: dict[str, np.ndarray] = {"timestamp_start": index, "timestamp_end": index + interval}
     for name in frame_before_qc.columns:
         cols[name] = frame_before_qc[name].to_numpy()
     for var in flags.columns:
@@ -162,9 +161,9 @@ def intervals_table(frame_before_qc: pd.DataFrame, flags: pd.DataFrame, *parts: 
         for name in part.columns:
             if name not in cols:
                 cols[name] = part[name].to_numpy()
-    body = pd.DataFrame(cols)
-    out = pd.concat([out, body], axis=1)
-    return out
+    # one column per array, not consolidated into 2-D blocks: the table is only written, and
+    # consolidating (then concatenating) copied every value twice (0.8 s for 16 site-years)
+    return pd.DataFrame(cols, copy=False)
 
 
 def daily_table(parts: list[pd.DataFrame]) -> pd.DataFrame:
