@@ -17,7 +17,7 @@ CSV exports, the demo grassland logger layout), then measures, in one run:
 * the input/output floor on the same CSV files: ``pandas.read_csv`` of every file,
   concatenated and written to one parquet file;
 * per size, ``towerflow run CONFIG FILES --out DIR --no-report`` as a subprocess: wall time
-  and peak resident memory (``ru_maxrss`` of that child), beside the peak of an interpreter
+  and peak resident memory (the child's own VmHWM), beside the peak of an interpreter
   that only imports the job (the fixed part of the memory);
 * the similar-conditions filling speed-up over the plain per-gap loop
   (``benchmarks/bench_gapfill.py``);
@@ -37,6 +37,7 @@ import datetime as _dt
 import json
 import os
 import platform
+import re
 import shutil
 import subprocess
 import sys
@@ -136,17 +137,46 @@ def _tool(name: str) -> str:
     return str(candidate) if candidate.exists() else name
 
 
+#: run a Python script or ``-c`` code as the child would, then report the peak resident memory
+#: of the child's own address space (VmHWM of /proc/self/status). ru_maxrss from wait4 would
+#: also count the benchmark's own pages, which a forked child holds until it executes.
+_PEAK_WRAPPER = """
+import runpy, sys
+target, sys.argv = sys.argv[1], sys.argv[1:]
+try:
+    if target == "-c":
+        exec(compile(_code, "<string>", "exec"), {"__name__": "__main__"})
+    else:
+        runpy.run_path(target, run_name="__main__")
+finally:
+    try:
+        with open("/proc/self/status") as fh:
+            kib = next(int(line.split()[1]) for line in fh if line.startswith("VmHWM:"))
+        sys.stderr.write(f"\\nTOWERFLOW_BENCH_PEAK_KIB {kib}\\n")
+    except (OSError, StopIteration):
+        pass
+"""
+
+
 def run_child(args: list[str], *, cwd=None) -> tuple[float, float, int]:
-    """Run a subprocess; return (wall s, peak resident memory MiB, exit status)."""
+    """Run a Python child (a script path with its arguments, or ``-c CODE``); return (wall s,
+    peak resident memory MiB of the child itself, exit status)."""
+    if args[0] == "-c":
+        code = f"_code = {args[1]!r}\n" + _PEAK_WRAPPER
+        cmd = [sys.executable, "-c", code, "-c"]
+    else:
+        cmd = [sys.executable, "-c", _PEAK_WRAPPER, *args]
     t0 = time.perf_counter()
-    proc = subprocess.Popen(args, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - t0
     proc.returncode = os.waitstatus_to_exitcode(status)
     err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
     if proc.returncode != 0:
         print(f"warning: {' '.join(args[:3])} … exited {proc.returncode}: {err[-400:]}", file=sys.stderr)
-    return wall, usage.ru_maxrss / 1024, proc.returncode  # ru_maxrss is in KiB on Linux
+    found = re.findall(r"TOWERFLOW_BENCH_PEAK_KIB (\d+)", err)
+    peak_kib = int(found[-1]) if found else usage.ru_maxrss  # ru_maxrss is in KiB on Linux
+    return wall, peak_kib / 1024, proc.returncode
 
 
 def io_floor(files) -> tuple[float, float]:
@@ -198,28 +228,26 @@ def bench_sizes(sizes, data_root: Path, work: Path, *, report: bool, repeat: int
     first = datasets[min(sizes)]
     time_site(first, work / "warmup", report=report)
     # fixed memory: an interpreter that imports the job and does nothing
-    _, base_rss, _ = run_child([sys.executable, "-c", "import towerflow.runner, towerflow.cli, pipeline.process,"
+    _, base_rss, _ = run_child(["-c", "import towerflow.runner, towerflow.cli, pipeline.process,"
                                 " pipeline.qc, pipeline.closure, pipeline.health, pipeline.gapfill,"
                                 " pipeline.conductance, pipeline.outputs, scipy.optimize, scipy.stats"])
-    # the sizes alternate too (1, 4, 16, 1, 4, 16, …), each floor beside its job, so that the
-    # machine's drift over the minutes of the run reaches every size alike
-    floors = {n: [] for n in sizes}
-    runs = {n: [] for n in sizes}
-    for r in range(repeat):
-        for n in sizes:
-            print(f"timing {n} site-year(s), round {r + 1} of {repeat} …", file=sys.stderr)
-            floors[n].append(io_floor(datasets[n].files))
-            runs[n].append(time_site(datasets[n], work / f"run-{n}y", report=report))
     for n in sizes:
         data = datasets[n]
-        best = min(runs[n], key=lambda t: t["total"])
+        print(f"timing {n} site-year(s) …", file=sys.stderr)
+        # floor and job alternate, so that a change of the machine's speed during the size's
+        # rounds (other load on the shared cores) reaches both alike; the sizes run one after
+        # another, smallest first, so that no larger record's heap is in the process yet
+        floors, runs = [], []
+        for _ in range(repeat):
+            floors.append(io_floor(data.files))
+            runs.append(time_site(data, work / f"run-{n}y", report=report))
+        best = min(runs, key=lambda t: t["total"])
         out_dir = work / f"cli-{n}y"
         shutil.rmtree(out_dir, ignore_errors=True)
         wall, rss, status = run_child([_tool("towerflow"), "run", str(data.config),
                                        *map(str, data.files), "--out", str(out_dir), "--no-report"])
         results[n] = {
-            "timings": best, "floor_s": min(f[0] for f in floors[n]),
-            "floor_cpu_s": min(f[1] for f in floors[n]),
+            "timings": best, "floor_s": min(f[0] for f in floors), "floor_cpu_s": min(f[1] for f in floors),
             "cli_wall_s": wall, "cli_peak_rss_mib": rss,
             "cli_status": status, "base_rss_mib": base_rss, "rows": data.rows,
             "files": len(data.files), "csv_mb": data.csv_bytes / 1e6,
