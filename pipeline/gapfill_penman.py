@@ -338,6 +338,8 @@ def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, availabl
     last = np.searchsorted(ok_pos, hi)
     window_theta = _window_fits(first, last, ok_pos, min_samples, gs_obs=gs_obs, rg=rg, vpd=vpd,
                                 swc=swc_f, guess=site_theta)
+    # the reference of a window without observed gs (its fit is the site-wide one)
+    swc_record_mean = float(np.nanmean(swc_f)) if swc_f is not None else 0.0
     for b in range(lo.size):  # loop over moving windows (tens per year), not over gaps
         u0, u1 = min(lo[b], b_lo[b]), max(hi[b], b_hi[b])
         seg = slice(u0, u1)
@@ -353,8 +355,7 @@ def penman_monteith_fill(le_obs, to_fill, *, index, rg, ta, vpd, p_air, availabl
             info["windows_fitted"] += 1
         if theta is None:
             continue
-        ref = swc_f[sel].mean() if (swc_f is not None and sel.size) else (
-            np.nanmean(swc_f) if swc_f is not None else 0.0)
+        ref = swc_f[sel].mean() if (swc_f is not None and sel.size) else swc_record_mean
         win = np.zeros(u1 - u0, dtype=bool)
         win[lo[b] - u0:hi[b] - u0] = True
         need_local = targets | (win & obs_day[seg])

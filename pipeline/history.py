@@ -114,7 +114,8 @@ def apply_corrections(frame: pd.DataFrame, history: Iterable[HistoryEntry], site
     Returns
     -------
     corrected : pandas.DataFrame
-        A new frame; corrected variables as float64.
+        A new frame; corrected variables as float64 (new arrays; the other columns share
+        the input's arrays, which neither function writes).
     trace : pandas.DataFrame
         Same index; an int16 column ``<var>_history_entry`` for each variable of the frame
         that some entry scales or offsets, holding the :attr:`HistoryEntry.index` applied
@@ -123,7 +124,9 @@ def apply_corrections(frame: pd.DataFrame, history: Iterable[HistoryEntry], site
     """
     index = frame.index if getattr(frame.index, "tz", None) is not None else \
         pd.DatetimeIndex(frame.index).tz_localize(site.tz)
-    out = frame.copy()
+    # a shallow copy: a corrected column is replaced by a new array (never written in place),
+    # so the input stays as it was; the columns no entry corrects are not copied
+    out = frame.copy(deep=False)
     trace = pd.DataFrame(index=frame.index)
     for entry in history:
         mask = None
@@ -160,7 +163,7 @@ def apply_exclusions(flags: pd.DataFrame, history: Iterable[HistoryEntry]) -> pd
     pandas.DataFrame
         A new flag frame; variables the frame lacks are ignored.
     """
-    out = flags.copy()
+    out = flags.copy(deep=False)  # columns are replaced, never written in place (as above)
     for entry in history:
         if not entry.exclude:
             continue

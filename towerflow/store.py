@@ -339,9 +339,14 @@ class _FloatStream:
         self.source_sha: list[np.ndarray] = []
         self.changed: list[np.ndarray] = []  # per piece: __changed_by_file, __changed_by_sha256
         self.changed_sha: list[np.ndarray] = []
-        self.keys = np.empty(0, dtype=np.int64)  # sorted stamps (ns) of the merged rows
-        self.key_piece = np.empty(0, dtype=np.intp)  # their piece
-        self.key_row = np.empty(0, dtype=np.intp)  # and row in the piece
+        # sorted stamps (ns) of the merged rows, their piece and row in the piece: the first
+        # _n_keys entries of buffers that grow by doubling (files usually arrive in time order
+        # and are appended: amortised O(1) per row, where a new array per file would copy the
+        # whole record again for every file)
+        self._keys = np.empty(0, dtype=np.int64)
+        self._key_piece = np.empty(0, dtype=np.intp)
+        self._key_row = np.empty(0, dtype=np.intp)
+        self._n_keys = 0
         self.tz = None
         if stored is not None:
             self._add_columns([c for c in stored.columns if c not in _PROV])
@@ -392,15 +397,36 @@ class _FloatStream:
         self.changed_sha.append(changed_sha)
         rows = np.arange(n, dtype=np.intp)
         piece = np.full(n, k, dtype=np.intp)
-        if not self.keys.size or not n or stamps[0] > self.keys[-1]:  # appended in time order
-            self.keys = np.concatenate([self.keys, stamps])
-            self.key_piece = np.concatenate([self.key_piece, piece])
-            self.key_row = np.concatenate([self.key_row, rows])
+        m = self._n_keys
+        if not m or not n or stamps[0] > self._keys[m - 1]:  # appended in time order
+            if m + n > self._keys.size:
+                capacity = max(2 * self._keys.size, m + n, 1024)
+                for name in ("_keys", "_key_piece", "_key_row"):
+                    grown = np.empty(capacity, dtype=getattr(self, name).dtype)
+                    grown[:m] = getattr(self, name)[:m]
+                    setattr(self, name, grown)
+            self._keys[m:m + n] = stamps
+            self._key_piece[m:m + n] = piece
+            self._key_row[m:m + n] = rows
+            self._n_keys = m + n
         else:
             at = np.searchsorted(self.keys, stamps)  # stamps are new: insert them in order
-            self.keys = np.insert(self.keys, at, stamps)
-            self.key_piece = np.insert(self.key_piece, at, piece)
-            self.key_row = np.insert(self.key_row, at, rows)
+            self._keys = np.insert(self.keys, at, stamps)
+            self._key_piece = np.insert(self.key_piece, at, piece)
+            self._key_row = np.insert(self.key_row, at, rows)
+            self._n_keys = self._keys.size
+
+    @property
+    def keys(self) -> np.ndarray:
+        return self._keys[:self._n_keys]
+
+    @property
+    def key_piece(self) -> np.ndarray:
+        return self._key_piece[:self._n_keys]
+
+    @property
+    def key_row(self) -> np.ndarray:
+        return self._key_row[:self._n_keys]
 
     def _widen(self, k: int) -> np.ndarray:
         """Piece ``k`` with a column for every column known now (NaN in those added later)."""
