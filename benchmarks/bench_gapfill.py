@@ -1,6 +1,6 @@
 """Benchmark: vectorised similar-conditions filling against a per-gap Python loop.
 
-An invented site-year (30-minute intervals, 46.5 N 7.9 E) with 30 % of LE missing in gaps
+An invented site-year (the invented meadow of ``tests/test_gapfill.py``, 30-minute intervals) with 30 % of LE missing in gaps
 of 1 interval to 2 days is filled by the Reichstein et al. (2005) sequence twice:
 
 - ``per-gap loop``: a Python loop over the missing intervals with numpy inside it, as a
@@ -29,54 +29,38 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from pipeline import micromet, solar
-from pipeline.config import SiteInfo
 from pipeline.errors import TowerflowWarning
 from pipeline.gapfill import fill_gaps
 from pipeline.gapfill_similar import fill_similar_conditions, similarity_steps, step_offsets
 from pipeline.rules import standard_rules
 
-VARS = ["le", "h", "rn", "g", "rg", "ta", "rh", "vpd", "p_air", "wind", "ustar"]
+def _test_module():
+    """tests/test_gapfill.py: its invented record and its reference loop are used here as they
+    are, one definition timed here and trusted there."""
+    import sys
+    from pathlib import Path
+
+    root = str(Path(__file__).resolve().parents[1])
+    if root not in sys.path:
+        sys.path.insert(0, root)
+    from tests import test_gapfill
+
+    return test_gapfill
 
 
 def invented_site_year(days=365, interval_minutes=30, seed=1):
-    site = SiteInfo(id="invented-bench", name="Invented benchmark meadow", latitude=46.5,
-                    longitude=7.9, elevation_m=820.0, utc_offset_hours=1.0, canopy_height_m=0.3,
-                    measurement_height_m=2.0, interval_minutes=interval_minutes)
-    rng = np.random.default_rng(seed)
+    """The tests' invented meadow record over ``days`` from 1 January, with 30 % of LE and H
+    missing in gaps of 1 interval to 2 days."""
+    frame, flags, site = _test_module().simulate(days=days, interval_minutes=interval_minutes,
+                                                 seed=seed, start="2025-01-01")
+    rng = np.random.default_rng(seed + 1)
     per_day = 1440 // interval_minutes
-    idx = pd.date_range("2025-01-01", periods=days * per_day, freq=f"{interval_minutes}min",
-                        tz=site.tz, name="timestamp_start")
-    n = len(idx)
-    r0 = solar.interval_mean_potential_radiation(idx, site.interval, site.latitude, site.longitude)
-    k = np.clip(rng.uniform(0.25, 0.8, days).repeat(per_day)
-                + pd.Series(rng.normal(0, 0.15, n)).rolling(4, min_periods=1).mean().to_numpy(), 0.05, 0.85)
-    rg = k * r0
-    hour = (idx.hour + idx.minute / 60).to_numpy()
-    doy = idx.dayofyear.to_numpy()
-    ta = 9 - 10 * np.cos(2 * np.pi * (doy - 15) / 365) + 5 * np.sin(2 * np.pi * (hour - 9) / 24) \
-        + rng.normal(0, 1.5, days).repeat(per_day)
-    rh = np.clip(70 - 20 * np.sin(2 * np.pi * (hour - 9) / 24) + rng.normal(0, 3, n), 20, 100)
-    vpd = micromet.vpd_from_rh(ta, rh)
-    wind = np.clip(1.5 + rng.gamma(2, 0.7, n), 0.3, None)
-    ustar = np.clip(0.12 * wind + rng.normal(0, 0.02, n), 0.05, None)
-    rn = 0.7 * rg - 40 + rng.normal(0, 5, n)
-    g = 0.1 * rn
-    ga = micromet.aerodynamic_conductance(wind, ustar)
-    gs = 0.015 * rg / (rg + 150) * np.exp(-0.35 * vpd) + 1e-4
-    le = np.asarray(micromet.penman_monteith(rn - g, ta, vpd, 92.0, ga, gs))
-    le = np.where(r0 > 0, le, 5.0) + rng.normal(0, 8, n)
-    h = 0.85 * (rn - g) - le + rng.normal(0, 10, n)
-    frame = pd.DataFrame(dict(le=le, h=h, rn=rn, g=g, rg=rg, ta=ta, rh=rh, vpd=vpd, p_air=92.0,
-                              wind=wind, ustar=ustar), index=idx)
-    frame["is_day"] = r0 > 0
-    frame["snow_or_frozen"] = False
+    n = len(frame)
     gaps = np.zeros(n, dtype=bool)
     while gaps.mean() < 0.30:
         length = int(rng.integers(1, 2 * per_day + 1))
         s = int(rng.integers(0, n - length))
         gaps[s:s + length] = True
-    flags = pd.DataFrame({c: np.zeros(n, np.int32) for c in VARS}, index=idx)
     flags.loc[gaps, "le"] = 1
     flags.loc[gaps, "h"] = 1
     return frame, flags, site, gaps
@@ -84,16 +68,9 @@ def invented_site_year(days=365, interval_minutes=30, seed=1):
 
 def plain_per_gap_loop(times, y, drivers, to_fill, *, tolerances, steps, min_samples):
     """The plain, obviously-correct per-gap loop that tests/test_gapfill.py checks the
-    vectorised filler against: one definition, timed here, trusted there."""
-    import sys
-    from pathlib import Path
-
-    root = str(Path(__file__).resolve().parents[1])
-    if root not in sys.path:
-        sys.path.insert(0, root)
-    from tests.test_gapfill import reference_similar_conditions
-
-    return reference_similar_conditions(times, y, drivers, to_fill, steps, tolerances, min_samples)
+    vectorised filler against."""
+    return _test_module().reference_similar_conditions(times, y, drivers, to_fill, steps, tolerances,
+                                                       min_samples)
 
 
 def per_gap_loop(y, drivers, to_fill, *, interval, tolerances, steps, min_samples):
