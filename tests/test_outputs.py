@@ -29,16 +29,20 @@ CF_NAMES = {"le": "surface_upward_latent_heat_flux", "h": "surface_upward_sensib
             "ta": "air_temperature", "wind": "wind_speed"}
 
 
+def _run_demo_site(tmp_path_factory, site_id: str, seed: int):
+    """``towerflow run`` over 21 days of one invented demo site: (config, files, site folder)."""
+    root = tmp_path_factory.mktemp(f"e2e-{site_id}")
+    network = write_demo_network(root / "raw", days=21, seed=seed)
+    cfg = network.parent / "sites" / f"{site_id}.toml"
+    files = sorted((network.parent / "raw" / site_id).glob("*.csv"))
+    out = root / "out"
+    assert main(["run", str(cfg), *map(str, files), "--out", str(out), "--no-report"]) == 0
+    return cfg, files, out / site_id
+
+
 @pytest.fixture(scope="module")
 def grassland_run(tmp_path_factory):
-    root = tmp_path_factory.mktemp("e2e")
-    network = write_demo_network(root / "raw", days=21, seed=7)
-    cfg = network.parent / "sites" / "demo-upland-grassland.toml"
-    files = sorted((network.parent / "raw" / "demo-upland-grassland").glob("*.csv"))
-    out = root / "out"
-    rc = main(["run", str(cfg), *map(str, files), "--out", str(out), "--no-report"])
-    assert rc == 0
-    return cfg, files, out / "demo-upland-grassland"
+    return _run_demo_site(tmp_path_factory, "demo-upland-grassland", seed=7)
 
 
 def test_intervals_contract_columns_and_metadata(grassland_run):
@@ -85,13 +89,7 @@ def test_intervals_grid_and_fill_invariants(grassland_run):
 @pytest.fixture(scope="module")
 def crop_run(tmp_path_factory):
     """The invented 60-minute irrigated crop (its record starts in late April: no frost)."""
-    root = tmp_path_factory.mktemp("e2e-crop")
-    network = write_demo_network(root / "raw", days=21, seed=11)
-    cfg = network.parent / "sites" / "demo-valley-crop.toml"
-    files = sorted((network.parent / "raw" / "demo-valley-crop").glob("*.csv"))
-    out = root / "out"
-    assert main(["run", str(cfg), *map(str, files), "--out", str(out), "--no-report"]) == 0
-    return out / "demo-valley-crop"
+    return _run_demo_site(tmp_path_factory, "demo-valley-crop", seed=11)[2]
 
 
 def test_sixty_minute_site_grid(crop_run):
