@@ -202,12 +202,11 @@ def fit_conductance_responses(gs, rg, vpd, dswc, valid, *, x0_guess=None, use_sw
 
 def _row_medians(y, valid):
     """Median of the valid entries of every row (0 for a row without any)."""
-    counts = np.maximum(valid.sum(axis=1), 1)
-    s = np.sort(np.where(valid, y, np.inf), axis=1)
-    lo = (counts - 1) // 2
-    hi = counts // 2
-    rows = np.arange(y.shape[0])
-    return np.where(valid.any(axis=1), 0.5 * (s[rows, lo] + s[rows, hi]), 0.0)
+    have = valid.any(axis=1)
+    med = np.zeros(y.shape[0])
+    if have.any():
+        med[have] = np.nanmedian(np.where(valid[have], y[have], np.nan), axis=1)
+    return med
 
 
 def fit_conductance_response(gs, rg, vpd, dswc=None, *, x0_guess=None):

@@ -452,13 +452,9 @@ def time_of_day_spread(x, index: pd.DatetimeIndex, interval: pd.Timedelta, *, ha
 
 
 def _label_is(values, names) -> np.ndarray:
-    """True where the label equals one of ``names`` (labels compared as they are: a missing
-    label equals no name)."""
-    v = np.asarray(values, dtype=object)
-    out = np.zeros(v.shape, dtype=bool)
-    for name in names:
-        out |= v == name
-    return out
+    """True where the label equals one of ``names`` (a missing label equals no name); a hashed
+    look-up (:meth:`pandas.Series.isin`), not the sort of :func:`numpy.isin` on text."""
+    return pd.Series(np.asarray(values, dtype=object), copy=False).isin(list(names)).to_numpy()
 
 
 def fill_error_sd(fill_sd, method, quality, cv_rmse: dict, *, reduced=None, spread=None) -> np.ndarray:
